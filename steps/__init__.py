@@ -1,0 +1,30 @@
+"""lotproof's step kinds: one module per family, registered in :data:`REGISTRY`.
+
+Each step kind is a frozen pydantic parameter model, a pure function on numpy
+arrays and a version string (see :mod:`steps._registry`). Steps know nothing of
+recipes, caches, ledgers or files.
+"""
+
+from steps._data import Output, Table
+from steps._registry import DATA_KINDS, REGISTRY, SAME, StepKind, StepParams, get_kind, step
+from steps._units import AREA_UNITS, LENGTH_UNITS, Area, Length, resolve_to_px
+
+# Importing the family modules registers their step kinds.
+from steps import filters, masks, measure, morphology, threshold  # noqa: E402,F401  isort: skip
+
+__all__ = [
+    "AREA_UNITS",
+    "Area",
+    "DATA_KINDS",
+    "LENGTH_UNITS",
+    "Length",
+    "Output",
+    "REGISTRY",
+    "SAME",
+    "StepKind",
+    "StepParams",
+    "Table",
+    "get_kind",
+    "resolve_to_px",
+    "step",
+]

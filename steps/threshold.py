@@ -1,0 +1,3 @@
+"""Placeholder: filled in by its family's author."""
+
+__all__: list[str] = []
