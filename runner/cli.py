@@ -1,0 +1,407 @@
+"""The ``lotproof`` command line: a thin shell over the runner's functions.
+
+Results go to stdout (tables, or one JSON document with ``--json``); messages and
+progress go to stderr. Exit codes are those of :mod:`runner.errors`.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+from pathlib import Path
+from typing import Any
+
+import click
+from rich.console import Console
+from rich.table import Table as RichTable
+from rich.text import Text
+
+from runner import __version__
+from runner.errors import (
+    EXIT_BAD_INPUT,
+    EXIT_INTERRUPTED,
+    EXIT_INVALID,
+    EXIT_LIMIT_FAILED,
+    EXIT_OK,
+    LotproofError,
+    RecipeError,
+)
+from runner.limits import FAIL, INCOMPLETE, PASS
+
+__all__ = ["main", "cli"]
+
+#: exit code for a bug in lotproof itself (never for bad data)
+EXIT_INTERNAL = 70
+
+_MARKS = {PASS: "PASS ✓", FAIL: "FAIL ✗", INCOMPLETE: "INCOMPLETE ?", "-": "-"}
+_STYLES = {PASS: "green", FAIL: "bold red", INCOMPLETE: "yellow"}
+
+
+def _out() -> Console:
+    return Console(highlight=False, soft_wrap=False)
+
+
+def _err() -> Console:
+    return Console(stderr=True, highlight=False)
+
+
+def _mark(verdict: str) -> Text:
+    return Text(_MARKS.get(verdict, verdict), style=_STYLES.get(verdict, ""))
+
+
+def _emit_json(document: Any) -> None:
+    click.echo(json.dumps(document, indent=2, ensure_ascii=False, allow_nan=False))
+
+
+def _fail_recipe(err: RecipeError, as_json: bool) -> None:
+    if as_json:
+        _emit_json({"ok": False, "problems": [p.as_dict() for p in err.problems]})
+    console = _err()
+    for problem in err.problems:
+        console.print(Text(str(problem)))
+    n = len(err.problems)
+    console.print(Text(f"{n} problem{'s' if n != 1 else ''} found; nothing was run.", style="bold"))
+    raise SystemExit(EXIT_INVALID)
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="lotproof")
+def cli() -> None:
+    """Run validated image-analysis recipes on production lots, with limits and records."""
+
+
+# ---------------------------------------------------------------- check
+
+
+@cli.command()
+@click.argument("recipe", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
+def check(recipe: Path, as_json: bool) -> None:
+    """Check RECIPE completely and show its step graph; exit 2 on any problem."""
+    from runner.recipe import load_recipe
+    from steps import REGISTRY
+
+    try:
+        checked = load_recipe(recipe)
+    except RecipeError as err:
+        _fail_recipe(err, as_json)
+        return
+    if as_json:
+        _emit_json(
+            {
+                "ok": True,
+                "method": checked.name,
+                "revision": checked.revision,
+                "recipe_sha256": checked.sha256,
+                "run_order": list(checked.order),
+                "not_run": list(checked.unused),
+                "steps": {
+                    n: {"apply": s.kind, "to": list(s.to), "gives": checked.kinds.get(n)}
+                    for n, s in checked.steps.items()
+                },
+                "limits": {
+                    n: {"value": f"{lim.step}.{lim.value}", "unit": lim.unit, "over": lim.over,
+                        "min": lim.low, "max": lim.high}
+                    for n, lim in checked.limits.items()
+                },
+            }
+        )
+        return
+    console = _out()
+    console.print(Text(f"{checked.path}: {checked.label} — {checked.summary}", style="bold"))
+    pixel = str(checked.pixel_size) if checked.pixel_size else "from each image's calibration"
+    console.print(f"pixel size: {pixel}")
+    graph = RichTable(title="step graph, in run order", title_justify="left")
+    for column in ("#", "step", "apply", "to", "gives", "parameters"):
+        graph.add_column(column)
+    for name, pattern in checked.inputs.items():
+        graph.add_row("in", name, "input", Text(pattern), "image", "")
+    for i, name in enumerate(checked.order, 1):
+        step = checked.steps[name]
+        params = ", ".join(
+            f"{k}={v}" for k, v in step.params.model_dump(mode="json", exclude_unset=True).items()
+        )
+        gives = checked.kinds.get(name, "?") + (" (kept)" if step.keep else "")
+        graph.add_row(str(i), name, step.kind, ", ".join(step.to), gives, Text(params))
+    console.print(graph)
+    if checked.unused:
+        console.print(
+            Text(
+                "not run (no limit, measurement or keep needs them): " + ", ".join(checked.unused),
+                style="yellow",
+            )
+        )
+    if checked.limits:
+        limits = RichTable(title="limits", title_justify="left")
+        for column in ("limit", "value", "unit", "over", "bound (inclusive)"):
+            limits.add_column(column)
+        for name, lim in checked.limits.items():
+            unit = "" if lim.unit == "-" else f" {lim.unit}"
+            if lim.low is not None and lim.high is not None:
+                bound = f"{lim.low:g} to {lim.high:g}{unit}"
+            elif lim.low is not None:
+                bound = f">= {lim.low:g}{unit}"
+            else:
+                bound = f"<= {lim.high:g}{unit}"
+            limits.add_row(name, f"{lim.step}.{lim.value}", lim.unit, lim.over, bound)
+        console.print(limits)
+    n_kinds = len({s.kind for s in checked.steps.values()})
+    console.print(f"ok: {len(checked.steps)} steps of {n_kinds} kinds ({len(REGISTRY)} known)")
+
+
+# ---------------------------------------------------------------- run
+
+
+def _print_summary(summary: Any) -> None:
+    console = _out()
+    verdicts = summary.verdicts
+    console.print(
+        Text(
+            f"{summary.recipe.label} on {summary.lot} — {len(summary.results)} images",
+            style="bold",
+        )
+    )
+    if verdicts.limits:
+        table = RichTable(title="limits", title_justify="left")
+        for column in ("limit", "value", "over", "bound", "verdict"):
+            table.add_column(column)
+        for name, lv in verdicts.limits.items():
+            if lv.over == "each":
+                failing = [i for i, (_, v) in lv.per_image.items() if v == FAIL]
+                value = f"{len(failing)} of {len(lv.per_image)} images fail" if failing else "every image"
+            else:
+                from runner.outputs import format_number
+
+                value = format_number(lv.value) if lv.value is not None else "-"
+                value += "" if lv.unit == "-" else f" {lv.unit}"
+            table.add_row(name, value, lv.over, lv.bound_text(), _mark(lv.verdict))
+        console.print(table)
+    images = RichTable(title="images", title_justify="left")
+    images.add_column("image")
+    images.add_column("verdict")
+    shown = [(lim.step, lim.value, lim.unit) for lim in summary.recipe.limits.values()]
+    shown = list(dict.fromkeys(shown))[:4]
+    for step_name, value_name, unit in shown:
+        images.add_column(f"{step_name}.{value_name}" + ("" if unit == "-" else f" [{unit}]"))
+    images.add_column("note")
+    from runner.outputs import format_number
+
+    for r in summary.results:
+        cells = [
+            format_number(round(r.values[(s, v)], 6)) if (s, v) in r.values else "-"
+            for s, v, _ in shown
+        ]
+        images.add_row(r.id, _mark(verdicts.image_verdict(r.id)), *cells, Text(r.reason))
+    console.print(images)
+    console.print(Text("lot verdict: ", style="bold") + _mark(verdicts.lot))
+    console.print(f"run folder: {summary.run_dir}")
+
+
+def _run(recipe: Path, lots: tuple[Path, ...], out: Path, as_json: bool, quiet: bool) -> int:
+    from runner.recipe import load_recipe
+    from runner.run import run_lot
+
+    try:
+        checked = load_recipe(recipe)
+    except RecipeError as err:
+        _fail_recipe(err, as_json)
+    err_console = _err()
+    documents = []
+    codes: list[int] = []
+    for lot in lots:
+        progress = None
+        task = None
+        if not quiet and err_console.is_terminal:
+            from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
+
+            progress = Progress(
+                TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+                console=err_console, transient=True,
+            )
+            progress.start()
+
+        def started(n: int, lot: Path = lot) -> None:
+            nonlocal task
+            if progress is not None:
+                task = progress.add_task(f"{lot.name}", total=n)
+            elif not quiet:
+                err_console.print(f"{lot}: {n} images")
+
+        def done(result: Any) -> None:
+            if progress is not None and task is not None:
+                progress.advance(task)
+            if result.status != "ok" and not quiet:
+                err_console.print(Text(f"incomplete: {result.id}: {result.reason}", style="yellow"))
+
+        try:
+            summary = run_lot(checked, lot, out, on_start=started, on_image=done)
+        finally:
+            if progress is not None:
+                progress.stop()
+        if as_json:
+            documents.append(summary.as_json())
+        else:
+            _print_summary(summary)
+        codes.append(summary.exit_code)
+    if as_json:
+        _emit_json(documents[0] if len(documents) == 1 else documents)
+    # the same precedence as one lot's exit code: bad data, then a failed limit
+    for code in (EXIT_BAD_INPUT, EXIT_LIMIT_FAILED):
+        if code in codes:
+            return code
+    return EXIT_OK
+
+
+@cli.command()
+@click.argument("recipe", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("lots", nargs=-1, required=True, type=click.Path(path_type=Path))
+@click.option("--out", type=click.Path(file_okay=False, path_type=Path), default=Path("runs"),
+              show_default=True, help="folder that receives the new run folder")
+@click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
+@click.option("--quiet", "-q", is_flag=True, help="no progress or messages on stderr")
+def run(recipe: Path, lots: tuple[Path, ...], out: Path, as_json: bool, quiet: bool) -> None:
+    """Run RECIPE on each LOT folder; write a new run folder per lot under --out.
+
+    Exit 0 when every limit passed, 1 when a limit failed, 3 when an image could not
+    be analysed (the lot is incomplete), 2 when the recipe is invalid.
+    """
+    raise SystemExit(_run(recipe, lots, out, as_json, quiet))
+
+
+# ---------------------------------------------------------------- steps
+
+
+@cli.command("steps")
+@click.argument("kind", required=False)
+@click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
+def steps_command(kind: str | None, as_json: bool) -> None:
+    """List the step kinds, or show one KIND's parameters, data and values."""
+    import difflib
+
+    from runner.schema import param_rows
+    from steps import REGISTRY
+
+    if kind is not None and kind not in REGISTRY:
+        close = difflib.get_close_matches(kind, list(REGISTRY), n=1)
+        hint = f" (did you mean {close[0]!r}?)" if close else ""
+        _err().print(Text(f"unknown step kind {kind!r}{hint}"))
+        raise SystemExit(EXIT_INVALID)
+    kinds = [REGISTRY[kind]] if kind else [REGISTRY[k] for k in sorted(REGISTRY)]
+
+    def takes(k: Any) -> str:
+        text = ", ".join(" or ".join(sorted(t)) for t in k.takes)
+        return text + (", ..." if k.variadic else "")
+
+    if as_json:
+        _emit_json(
+            {
+                k.name: {
+                    "summary": k.summary,
+                    "version": k.version,
+                    "takes": [sorted(t) for t in k.takes],
+                    "variadic": k.variadic,
+                    "gives": k.gives,
+                    "dimensions": sorted(k.ndims),
+                    "values": dict(k.values),
+                    "parameters": [
+                        {"name": n, "type": t, "default": d, "description": desc}
+                        for n, t, d, desc in param_rows(k)
+                    ],
+                }
+                for k in kinds
+            }
+        )
+        return
+    console = _out()
+    if kind is None:
+        table = RichTable(title="step kinds", title_justify="left")
+        for column in ("kind", "takes", "gives", "does"):
+            table.add_column(column)
+        for k in kinds:
+            table.add_row(k.name, takes(k), k.gives, k.summary)
+        console.print(table)
+        console.print("`lotproof steps KIND` shows a kind's parameters.")
+        return
+    k = kinds[0]
+    console.print(Text(f"{k.name} (version {k.version}): {k.summary}", style="bold"))
+    gives = "same kind as its input" if k.gives == "same" else k.gives
+    dims = ", ".join(f"{d}-D" for d in sorted(k.ndims))
+    console.print(f"takes: {takes(k)}   gives: {gives}   works on: {dims}")
+    params = RichTable(title="parameters", title_justify="left")
+    for column in ("parameter", "type", "default", "description"):
+        params.add_column(column)
+    for row in param_rows(k):
+        params.add_row(*(Text(c) for c in row))
+    params.add_row("keep", "true/false", "false", "save this step's result in the run folder")
+    console.print(params)
+    if k.values:
+        values = RichTable(title="values (for limits: STEP.NAME)", title_justify="left")
+        values.add_column("value")
+        values.add_column("unit")
+        for name, unit in k.values.items():
+            values.add_row(name, unit)
+        console.print(values)
+
+
+# ---------------------------------------------------------------- schema
+
+
+@cli.command()
+def schema() -> None:
+    """Print the recipe's JSON Schema (draft-07) for editors."""
+    from runner.schema import schema_text
+
+    click.echo(schema_text(), nl=False)
+
+
+# ---------------------------------------------------------------- demo
+
+
+@cli.command()
+@click.option("--out", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="folder that receives the run folder (default: demo_run/runs)")
+@click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
+def demo(out: Path | None, as_json: bool) -> None:
+    """Run the bundled demo lot (sintered bronze filter discs) through its recipe.
+
+    Exits 0 when the demo ran, whatever the verdicts.
+    """
+    from runner.demo import demo_paths
+
+    recipe, lot, default_out = demo_paths()
+    code = _run(recipe, (lot,), out or default_out, as_json, quiet=False)
+    if code not in (EXIT_OK, EXIT_LIMIT_FAILED, EXIT_BAD_INPUT):
+        raise SystemExit(code)
+    if not as_json:
+        _err().print("demo finished; the verdicts above are the demo lot's own.")
+
+
+def main(argv: list[str] | None = None) -> None:
+    """Entry point of the ``lotproof`` console script."""
+    if os.environ.get("NO_COLOR"):
+        os.environ.setdefault("TERM", "dumb")
+    try:
+        cli.main(args=argv, prog_name="lotproof", standalone_mode=False)
+    except click.exceptions.Abort:
+        _err().print("interrupted")
+        sys.exit(EXIT_INTERRUPTED)
+    except click.ClickException as err:
+        err.show()
+        sys.exit(EXIT_INVALID)
+    except KeyboardInterrupt:
+        _err().print("interrupted")
+        sys.exit(EXIT_INTERRUPTED)
+    except LotproofError as err:
+        _err().print(Text(f"error: {err}"))
+        sys.exit(err.exit_code)
+    except SystemExit:
+        raise
+    except Exception as err:  # a bug in lotproof: say so plainly, no traceback dump
+        _err().print(
+            Text(f"internal error in lotproof {__version__}: {type(err).__name__}: {err}")
+        )
+        if os.environ.get("LOTPROOF_DEBUG"):
+            raise
+        sys.exit(EXIT_INTERNAL)
+    sys.exit(EXIT_OK)

@@ -1,0 +1,203 @@
+"""Evaluating a recipe's graph on each image of a lot.
+
+The executor treats data as opaque: it reads inputs with :mod:`runner.inputs`,
+hands arrays to step functions in the recipe's run order, and collects what they
+give. It knows nothing of what the steps compute. One image that cannot be read or
+analysed is marked incomplete with its reason; the other images still run.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+import traceback
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from runner.errors import InputError
+from runner.inputs import LoadedImage, Sample, read_image
+from runner.recipe import Recipe
+from steps import REGISTRY, Area, Length, Output, StepParams, Table, resolve_to_px
+
+__all__ = ["StepRecord", "ImageResult", "resolve_params", "analyse_sample"]
+
+#: relative tolerance within which an image's own calibration agrees with the recipe's
+CALIBRATION_TOLERANCE = 0.01
+
+
+@dataclass
+class StepRecord:
+    step: str
+    kind: str
+    version: str
+    seconds: float
+
+
+@dataclass
+class ImageResult:
+    """What one image of the lot gave."""
+
+    id: str
+    status: str = "ok"  # ok | incomplete
+    reason: str = ""
+    inputs: list[dict[str, Any]] = field(default_factory=list)
+    spacing: tuple[float, ...] | None = None
+    #: (step, value name) -> value
+    values: dict[tuple[str, str], float] = field(default_factory=dict)
+    #: (step, value name) -> unit
+    units: dict[tuple[str, str], str] = field(default_factory=dict)
+    tables: dict[str, Table] = field(default_factory=dict)
+    kept: dict[str, Any] = field(default_factory=dict)
+    steps: list[StepRecord] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+
+    def fail(self, reason: str) -> ImageResult:
+        self.status = "incomplete"
+        self.reason = reason
+        self.values.clear()
+        self.tables.clear()
+        self.kept.clear()
+        return self
+
+
+def resolve_params(params: StepParams, spacing: tuple[float, ...]) -> StepParams:
+    """``params`` with every length and area converted to pixels.
+
+    Lengths use the pixel size along the last axis; the pixel size must be the
+    same along every axis of a 2-D image (square pixels).
+    """
+    update: dict[str, Any] = {}
+    for name in type(params).model_fields:
+        value = getattr(params, name)
+        if isinstance(value, (Length, Area)):
+            if len(set(spacing[-2:])) != 1:
+                raise ValueError(
+                    f"pixels are not square ({spacing[-2]:g} x {spacing[-1]:g} um); lengths "
+                    "in physical units need square pixels"
+                )
+            update[name] = resolve_to_px(value, spacing[-1])
+    return params.model_copy(update=update) if update else params
+
+
+def _spacing(recipe: Recipe, images: list[LoadedImage], result: ImageResult) -> tuple[float, ...]:
+    first = images[0]
+    spatial = first.data.ndim - (1 if first.is_color else 0)
+    calibration = first.calibration
+    if recipe.pixel_size is None:
+        if calibration.pixel_size_um is None:
+            raise InputError(
+                f"{first.path}: the recipe says pixel_size: from-image, but this image carries "
+                f"no calibration ({calibration.source})"
+            )
+        return tuple(calibration.pixel_size_um)
+    size_um = resolve_to_px(recipe.pixel_size, 1.0).value  # um per pixel
+    if calibration.pixel_size_um is not None:
+        own = calibration.pixel_size_um[-1]
+        if abs(own - size_um) > CALIBRATION_TOLERANCE * size_um:
+            result.notes.append(
+                f"{first.path}: the image says {own:.6g} um per pixel ({calibration.source}); "
+                f"the recipe's pixel_size {recipe.pixel_size} was used"
+            )
+    return (size_um,) * spatial
+
+
+def analyse_sample(
+    recipe: Recipe,
+    sample: Sample,
+    lot: Path,
+    *,
+    on_step: Callable[[str, str], None] | None = None,
+) -> ImageResult:
+    """Run ``recipe`` on one image of the lot; never raises for bad data."""
+    result = ImageResult(id=sample.id)
+    if sample.problem:
+        return result.fail(sample.problem)
+    loaded: dict[str, LoadedImage] = {}
+    try:
+        for name in recipe.inputs:
+            image = read_image(sample.files[name], lot, lossy=recipe.lossy_input)
+            loaded[name] = image
+            result.inputs.append({"input": name, **image.describe()})
+        spacing = _spacing(recipe, list(loaded.values()), result)
+    except InputError as err:
+        return result.fail(str(err))
+    result.spacing = spacing
+
+    data: dict[str, Any] = {name: image.data for name, image in loaded.items()}
+    color: set[str] = {name for name, image in loaded.items() if image.is_color}
+    del loaded
+    for name in recipe.order:
+        step = recipe.steps[name]
+        kind = REGISTRY[step.kind]
+        args = [data[source] for source in step.to]
+        for source, arg in zip(step.to, args, strict=True):
+            if source in color and not kind.accepts_color:
+                grays = [n for n, s in recipe.steps.items() if s.kind == "gray"]
+                hint = (
+                    f"step {grays[0]!r} (gray) makes a gray image; apply {name!r} to it"
+                    if grays
+                    else "add a step with apply: gray before it"
+                )
+                return result.fail(
+                    f"step {name!r} ({step.kind}) needs a gray image, but {source!r} of "
+                    f"{sample.id} is a colour image; {hint}"
+                )
+            if isinstance(arg, np.ndarray):
+                ndim = arg.ndim - (1 if source in color else 0)
+                if ndim not in kind.ndims:
+                    dims = " or ".join(f"{d}-D" for d in sorted(kind.ndims))
+                    return result.fail(
+                        f"step {name!r} ({step.kind}) works on {dims} data; {source!r} of "
+                        f"{sample.id} is {ndim}-D (shape {arg.shape})"
+                    )
+        if on_step is not None:
+            on_step(sample.id, name)
+        started = time.perf_counter()
+        try:
+            params = resolve_params(step.params, spacing)
+            out = kind.func(params, *args, spacing=spacing)
+        except (ValueError, TypeError, ArithmeticError, MemoryError) as err:
+            return result.fail(f"step {name!r} ({step.kind}): {err}")
+        except Exception as err:  # a step bug must not end the lot
+            where = traceback.extract_tb(err.__traceback__)[-1]
+            return result.fail(
+                f"step {name!r} ({step.kind}) failed unexpectedly: {type(err).__name__}: {err} "
+                f"(at {Path(where.filename).name}:{where.lineno})"
+            )
+        seconds = time.perf_counter() - started
+        result.steps.append(StepRecord(name, step.kind, kind.version, seconds))
+        if isinstance(out, Output):
+            for value_name, value in out.values.items():
+                if value_name not in kind.values:
+                    return result.fail(
+                        f"step {name!r} ({step.kind}) reported an undeclared value {value_name!r}"
+                    )
+                result.values[(name, value_name)] = float(value)
+                result.units[(name, value_name)] = kind.values[value_name]
+            out = out.data
+        data[name] = out
+        if isinstance(out, Table):
+            result.tables[name] = out
+        if step.keep:
+            result.kept[name] = out
+        # Free what no later step needs: peak memory stays at a few images' worth.
+        for source in step.to:
+            if source not in recipe.inputs and not _needed_later(recipe, source, name):
+                data.pop(source, None)
+    for (step_name, value_name), value in result.values.items():
+        if not math.isfinite(value) and value_name in _limited(recipe, step_name):
+            result.notes.append(f"{step_name}.{value_name} is undefined for {sample.id}")
+    return result
+
+
+def _needed_later(recipe: Recipe, source: str, current: str) -> bool:
+    position = recipe.order.index(current)
+    return any(source in recipe.steps[n].to for n in recipe.order[position + 1 :])
+
+
+def _limited(recipe: Recipe, step_name: str) -> set[str]:
+    return {limit.value for limit in recipe.limits.values() if limit.step == step_name}

@@ -1,0 +1,241 @@
+"""Strict YAML reading with the position of every key and value.
+
+Recipes are read with YAML 1.2 core-schema scalars (``no``, ``off``, ``010``,
+``12:30`` stay what they look like; ``1e3`` is a number), duplicate keys are
+errors, and anchors, aliases, explicit tags and multi-document files are refused.
+Aliases are refused because they allow exponential expansion and because they
+would give one value several positions.
+
+The result is plain Python data (dict, list, str, int, float, bool, None) and a
+table from each path (a tuple of keys and list indexes) to the position of the
+key and of the value, so that an error found later, in the recipe's models, can
+point at the line and column it concerns.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass, field
+from typing import Any
+
+import yaml
+from yaml.nodes import MappingNode, Node, ScalarNode, SequenceNode
+
+__all__ = ["Position", "LoadedYaml", "YamlProblem", "load_yaml", "MAX_RECIPE_BYTES"]
+
+#: a recipe larger than this is refused before it is parsed
+MAX_RECIPE_BYTES = 1_000_000
+#: nesting deeper than this is refused (a recipe needs five levels)
+MAX_DEPTH = 64
+
+_TAG_STR = "tag:yaml.org,2002:str"
+_TAG_INT = "tag:yaml.org,2002:int"
+_TAG_FLOAT = "tag:yaml.org,2002:float"
+_TAG_BOOL = "tag:yaml.org,2002:bool"
+_TAG_NULL = "tag:yaml.org,2002:null"
+_TAG_MAP = "tag:yaml.org,2002:map"
+_TAG_SEQ = "tag:yaml.org,2002:seq"
+
+
+@dataclass(frozen=True)
+class Position:
+    """1-based line and column."""
+
+    line: int
+    column: int
+
+
+@dataclass
+class YamlProblem:
+    position: Position
+    what: str
+
+
+@dataclass
+class LoadedYaml:
+    data: Any
+    #: path -> (position of the key, position of the value)
+    positions: dict[tuple[Any, ...], tuple[Position, Position]] = field(default_factory=dict)
+    problems: list[YamlProblem] = field(default_factory=list)
+
+    def position(self, path: tuple[Any, ...], *, key: bool = False) -> Position:
+        """The position of ``path``, or of its longest prefix that has one."""
+        for n in range(len(path), -1, -1):
+            hit = self.positions.get(tuple(path[:n]))
+            if hit is not None:
+                return hit[0] if key and n == len(path) else hit[1]
+        return Position(1, 1)
+
+
+class _StrictLoader(yaml.SafeLoader):
+    """SafeLoader with YAML 1.2 core-schema implicit scalars and no aliases."""
+
+    def compose_node(self, parent: Node | None, index: Any) -> Node:  # type: ignore[override]
+        event = self.peek_event()
+        if isinstance(event, yaml.AliasEvent):
+            raise yaml.MarkedYAMLError(
+                problem="aliases (*name) are not allowed in recipes; write the value out",
+                problem_mark=event.start_mark,
+            )
+        if getattr(event, "anchor", None) is not None:
+            raise yaml.MarkedYAMLError(
+                problem="anchors (&name) are not allowed in recipes",
+                problem_mark=event.start_mark,
+            )
+        self._depth = getattr(self, "_depth", 0) + 1
+        try:
+            if self._depth > MAX_DEPTH:
+                raise yaml.MarkedYAMLError(
+                    problem=f"nesting deeper than {MAX_DEPTH} levels is not allowed",
+                    problem_mark=event.start_mark,
+                )
+            return super().compose_node(parent, index)
+        finally:
+            self._depth -= 1
+
+
+_StrictLoader.yaml_implicit_resolvers = {}
+_StrictLoader.add_implicit_resolver(
+    _TAG_BOOL, re.compile(r"^(?:true|True|TRUE|false|False|FALSE)$"), list("tTfF")
+)
+_StrictLoader.add_implicit_resolver(
+    _TAG_INT, re.compile(r"^(?:[-+]?[0-9]+|0o[0-7]+|0x[0-9a-fA-F]+)$"), list("-+0123456789")
+)
+_StrictLoader.add_implicit_resolver(
+    _TAG_FLOAT,
+    re.compile(
+        r"^(?:[-+]?(?:\.[0-9]+|[0-9]+(?:\.[0-9]*)?)(?:[eE][-+]?[0-9]+)?"
+        r"|[-+]?\.(?:inf|Inf|INF)|\.(?:nan|NaN|NAN))$"
+    ),
+    list("-+0123456789."),
+)
+_StrictLoader.add_implicit_resolver(
+    _TAG_NULL, re.compile(r"^(?:~|null|Null|NULL|)$"), ["~", "n", "N", ""]
+)
+
+
+def _pos(mark: Any) -> Position:
+    return Position(mark.line + 1, mark.column + 1)
+
+
+def _scalar(node: ScalarNode) -> Any:
+    value = node.value
+    tag = node.tag
+    if tag == _TAG_STR:
+        return value
+    if tag == _TAG_NULL:
+        return None
+    if tag == _TAG_BOOL:
+        return value.lower() == "true"
+    if tag == _TAG_INT:
+        if value.startswith("0o"):
+            return int(value[2:], 8)
+        if value.startswith("0x"):
+            return int(value[2:], 16)
+        return int(value)
+    if tag == _TAG_FLOAT:
+        lowered = value.lower()
+        if lowered.endswith(".inf"):
+            return -math.inf if lowered.startswith("-") else math.inf
+        if lowered == ".nan":
+            return math.nan
+        return float(value)
+    raise _TagRefused(tag)
+
+
+class _TagRefused(Exception):
+    def __init__(self, tag: str):
+        self.tag = tag
+
+
+def _build(
+    node: Node, path: tuple[Any, ...], key_pos: Position, out: LoadedYaml
+) -> Any:
+    out.positions[path] = (key_pos, _pos(node.start_mark))
+    if isinstance(node, ScalarNode):
+        try:
+            return _scalar(node)
+        except _TagRefused as refused:
+            out.problems.append(
+                YamlProblem(_pos(node.start_mark), f"explicit tag {refused.tag!r} is not allowed")
+            )
+            return None
+    if node.tag not in (_TAG_MAP, _TAG_SEQ):
+        out.problems.append(
+            YamlProblem(_pos(node.start_mark), f"explicit tag {node.tag!r} is not allowed")
+        )
+        return None
+    if isinstance(node, SequenceNode):
+        return [
+            _build(item, path + (i,), _pos(item.start_mark), out)
+            for i, item in enumerate(node.value)
+        ]
+    assert isinstance(node, MappingNode)
+    result: dict[Any, Any] = {}
+    first_seen: dict[Any, Position] = {}
+    for key_node, value_node in node.value:
+        kpos = _pos(key_node.start_mark)
+        if not isinstance(key_node, ScalarNode):
+            out.problems.append(YamlProblem(kpos, "a key must be plain text, not a list or mapping"))
+            continue
+        try:
+            key = _scalar(key_node)
+        except _TagRefused as refused:
+            out.problems.append(YamlProblem(kpos, f"explicit tag {refused.tag!r} is not allowed"))
+            continue
+        if not isinstance(key, str):
+            out.problems.append(
+                YamlProblem(kpos, f"a key must be text (got {key_node.value!r}); quote it")
+            )
+            continue
+        if key in first_seen:
+            out.problems.append(
+                YamlProblem(
+                    kpos,
+                    f"duplicate key {key!r} (first at line {first_seen[key].line}); "
+                    "YAML keeps only one of them",
+                )
+            )
+            continue
+        first_seen[key] = kpos
+        result[key] = _build(value_node, path + (key,), kpos, out)
+    return result
+
+
+def load_yaml(text: str) -> LoadedYaml:
+    """Parse ``text`` strictly; syntax problems are returned, never raised.
+
+    On a syntax error ``data`` is ``None`` and ``problems`` holds one entry with
+    the position PyYAML reported.
+    """
+    out = LoadedYaml(data=None)
+    loader = _StrictLoader(text)
+    try:
+        node = loader.get_single_node()
+    except yaml.MarkedYAMLError as err:
+        mark = err.problem_mark or err.context_mark
+        text_of_err = str(err)
+        if "expected a single document" in text_of_err:
+            what = "a recipe is one YAML document; remove the '---' separator and what follows"
+        elif "'\\t'" in text_of_err:
+            what = "tab characters cannot indent YAML; use spaces"
+        elif err.context and err.problem:
+            what = f"{err.context}, {err.problem}"
+        else:
+            what = err.problem or "invalid YAML"
+        out.problems.append(YamlProblem(_pos(mark) if mark else Position(1, 1), what))
+        return out
+    except yaml.YAMLError as err:
+        out.problems.append(YamlProblem(Position(1, 1), f"invalid YAML: {err}"))
+        return out
+    except RecursionError:
+        out.problems.append(YamlProblem(Position(1, 1), "the document is nested too deeply"))
+        return out
+    finally:
+        loader.dispose()
+    if node is None:
+        out.problems.append(YamlProblem(Position(1, 1), "the recipe is empty"))
+        return out
+    out.data = _build(node, (), Position(1, 1), out)
+    return out
