@@ -39,7 +39,7 @@ _STYLES = {PASS: "green", FAIL: "bold red", INCOMPLETE: "yellow"}
 
 
 def _out() -> Console:
-    return Console(highlight=False, soft_wrap=False)
+    return Console(highlight=False, soft_wrap=True)
 
 
 def _err() -> Console:
@@ -57,11 +57,11 @@ def _emit_json(document: Any) -> None:
 def _fail_recipe(err: RecipeError, as_json: bool) -> None:
     if as_json:
         _emit_json({"ok": False, "problems": [p.as_dict() for p in err.problems]})
-    console = _err()
+    # One problem per line, never wrapped: editors and scripts read FILE:LINE:COL.
     for problem in err.problems:
-        console.print(Text(str(problem)))
+        click.echo(str(problem), err=True)
     n = len(err.problems)
-    console.print(Text(f"{n} problem{'s' if n != 1 else ''} found; nothing was run.", style="bold"))
+    click.echo(f"{n} problem{'s' if n != 1 else ''} found; nothing was run.", err=True)
     raise SystemExit(EXIT_INVALID)
 
 

@@ -47,12 +47,15 @@ def run_order(graph: nx.DiGraph, names: set[str]) -> tuple[str, ...]:
     return tuple(n for generation in nx.topological_generations(sub) for n in sorted(generation))
 
 
-def resolve_graph(recipe: Recipe, collector: _Collector, *, strict: bool) -> Recipe:
+def resolve_graph(
+    recipe: Recipe, collector: _Collector, *, strict: bool, declared: frozenset[str] = frozenset()
+) -> Recipe:
     """Check the graph of ``recipe``, adding problems to ``collector``.
 
     Returns the recipe with ``order``, ``unused`` and ``kinds`` filled in. With
     ``strict=False`` (the recipe already has other problems) only references and
-    cycles are checked.
+    cycles are checked; names in ``declared`` (steps that exist but did not pass
+    their own checks) are not reported as missing.
     """
     known = list(recipe.inputs) + list(recipe.steps)
     for name in recipe.steps:
@@ -62,7 +65,7 @@ def resolve_graph(recipe: Recipe, collector: _Collector, *, strict: bool) -> Rec
     for name, step in recipe.steps.items():
         for i, source in enumerate(step.to):
             where = ("steps", name, "to") if len(step.to) == 1 else ("steps", name, "to", i)
-            if source not in graph:
+            if source not in graph and source not in declared:
                 close = difflib.get_close_matches(source, known, n=1, cutoff=0.6)
                 hint = f" (did you mean {close[0]!r}?)" if close else ""
                 collector.add(where, f"no input or step named {source!r}{hint}")

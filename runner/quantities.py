@@ -43,8 +43,8 @@ def parse_bound(raw: object, unit: str) -> float:
     if isinstance(raw, (int, float)):
         if unit != DIMENSIONLESS:
             raise BoundError(
-                f"a bare number where a value in {unit} is bounded (got {raw!r}); "
-                f"write {raw!r} {unit}"
+                f"a bare number where a value in {unit} is bounded (got {raw:g}); "
+                f"write {raw:g} {unit}"
             )
         value = float(raw)
     elif isinstance(raw, str):

@@ -65,9 +65,9 @@ class LimitModel(_Strict):
         description="each: every image must pass; lot-mean / lot-max / lot-min: the lot's "
         "mean / maximum / minimum of the value must pass",
     )
-    min: float | str | None = Field(None, description="lower bound, inclusive, with unit")
-    max: float | str | None = Field(None, description="upper bound, inclusive, with unit")
-    range: list[float | str] | None = Field(
+    min: int | float | str | None = Field(None, description="lower bound, inclusive, with unit")
+    max: int | float | str | None = Field(None, description="upper bound, inclusive, with unit")
+    range: list[int | float | str] | None = Field(
         None, min_length=2, max_length=2, description="[lower, upper], inclusive, with units"
     )
 
@@ -336,8 +336,9 @@ def parse_recipe(raw: bytes, file: str = "<recipe>") -> Recipe:
     if model is None or collector.problems:
         # Graph problems are still worth reporting when steps parsed.
         if steps and isinstance(data.get("inputs"), dict):
+            declared = frozenset(k for k in raw_steps if isinstance(k, str))  # type: ignore[union-attr]
             resolve_graph(
-                _partial_recipe(file, raw, data, steps), collector, strict=False
+                _partial_recipe(file, raw, data, steps), collector, strict=False, declared=declared
             )
         raise RecipeError(collector.problems)
 

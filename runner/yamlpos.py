@@ -152,7 +152,10 @@ class _TagRefused(Exception):
 def _build(
     node: Node, path: tuple[Any, ...], key_pos: Position, out: LoadedYaml
 ) -> Any:
-    out.positions[path] = (key_pos, _pos(node.start_mark))
+    # A problem with a whole mapping (a missing key, a rule across keys) is shown at
+    # the mapping's own key, not at its first entry.
+    value_pos = key_pos if isinstance(node, MappingNode) and path else _pos(node.start_mark)
+    out.positions[path] = (key_pos, value_pos)
     if isinstance(node, ScalarNode):
         try:
             return _scalar(node)

@@ -147,8 +147,8 @@ def _parse(raw: Any, table: dict[str, tuple[str, float | None]], cls: type, hint
     match = _QUANTITY.match(raw)
     if not match:
         raise PydanticCustomError(
-            "quantity_syntax", "cannot read {got!r} as a {kind}; write {hint}",
-            {"kind": kind, "got": raw, "hint": hint},
+            "quantity_syntax", "cannot read {got} as a {kind}; write {hint}",
+            {"kind": kind, "got": repr(raw), "hint": hint},
         )
     number, unit = match.groups()
     if unit not in table:
@@ -156,9 +156,9 @@ def _parse(raw: Any, table: dict[str, tuple[str, float | None]], cls: type, hint
         if unit in other:
             raise PydanticCustomError(
                 "quantity_wrong_dimension",
-                "{got!r} is {other_kind}, but a {kind} belongs here; write {hint}",
+                "{got} is {other_kind}, but a {kind} belongs here; write {hint}",
                 {
-                    "got": raw,
+                    "got": repr(raw),
                     "kind": kind,
                     "other_kind": "an area" if other is AREA_UNITS else "a length",
                     "hint": hint,
@@ -166,8 +166,8 @@ def _parse(raw: Any, table: dict[str, tuple[str, float | None]], cls: type, hint
             )
         raise PydanticCustomError(
             "quantity_unit",
-            "unknown {kind} unit {unit!r} in {got!r}; use one of {units}",
-            {"kind": kind, "unit": unit, "got": raw, "units": ", ".join(table)},
+            "unknown {kind} unit {unit} in {got}; use one of {units}",
+            {"kind": kind, "unit": repr(unit), "got": repr(raw), "units": ", ".join(table)},
         )
     value = float(number)
     if not math.isfinite(value) or value <= 0:
