@@ -49,7 +49,8 @@ CAUTION = (
 )
 
 ROUNDING_RULE = (
-    "Lengths and areas are converted to pixels with the image's pixel size and kept as real "
+    "Lengths and areas are converted to pixels with the image's pixel size, rounded to 12 "
+    "significant digits (so 0.6 um at 0.2 um per pixel is exactly 3 px) and kept as real "
     "numbers. A disk, diamond or ball of radius r px is every pixel offset with x^2 + y^2 <= r^2 "
     "(|x| + |y| <= r for a diamond): no rounding. Sides of squares, rectangles and cubes and the "
     "length of a line become 2*floor(v/2) + 1 pixels (the nearest odd number, ties upward)."

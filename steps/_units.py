@@ -192,16 +192,23 @@ def resolve_to_px(quantity: Length | Area, pixel_size_um: float) -> Length | Are
 
     A length in ``um`` becomes ``value / pixel_size_um`` pixels, an area in ``um2``
     becomes ``value / pixel_size_um**2`` square pixels; values already in pixels are
-    returned unchanged. No rounding is applied.
+    returned unchanged. The result is rounded to 12 significant digits, so that
+    decimal inputs such as ``0.6 um`` at ``0.2 um`` per pixel give exactly 3 px
+    rather than 2.9999999999999996 px (which would change a digital disk); no other
+    rounding is applied.
     """
     if isinstance(quantity, Length):
         if quantity.unit == "px":
             return quantity
         per_unit = LENGTH_UNITS[quantity.unit][1]
         assert per_unit is not None
-        return Length(quantity.value * per_unit / pixel_size_um, "px")
+        return Length(_significant(quantity.value * per_unit / pixel_size_um), "px")
     if quantity.unit == "px2":
         return quantity
     per_unit = AREA_UNITS[quantity.unit][1]
     assert per_unit is not None
-    return Area(quantity.value * per_unit / pixel_size_um**2, "px2")
+    return Area(_significant(quantity.value * per_unit / pixel_size_um**2), "px2")
+
+
+def _significant(value: float) -> float:
+    return float(f"{value:.12g}")
