@@ -43,7 +43,7 @@ def _out() -> Console:
 
 
 def _err() -> Console:
-    return Console(stderr=True, highlight=False)
+    return Console(stderr=True, highlight=False, soft_wrap=True)
 
 
 def _mark(verdict: str) -> Text:
@@ -198,25 +198,47 @@ def _print_summary(summary: Any) -> None:
     console.print(f"run folder: {summary.run_dir}")
 
 
-def _run(recipe: Path, lots: tuple[Path, ...], out: Path, as_json: bool, quiet: bool) -> int:
+def _store(cache: Path | None, no_cache: bool) -> Any:
+    from runner.cache import DiskStore, NullStore, default_cache_dir
+
+    if no_cache:
+        return NullStore()
+    return DiskStore(cache or default_cache_dir())
+
+
+def _run(
+    recipe: Path,
+    lots: tuple[Path, ...],
+    out: Path,
+    as_json: bool,
+    quiet: bool,
+    *,
+    jobs: int | None = None,
+    cache: Path | None = None,
+    no_cache: bool = False,
+) -> int:
     from runner.recipe import load_recipe
-    from runner.run import run_lot
+    from runner.run import run_lot, usable_cores
 
     try:
         checked = load_recipe(recipe)
     except RecipeError as err:
         _fail_recipe(err, as_json)
+    store = _store(cache, no_cache)
+    jobs = jobs or usable_cores()
     err_console = _err()
     documents = []
     codes: list[int] = []
     for lot in lots:
         progress = None
         task = None
+        counts = {"done": 0, "reused": 0, "steps": 0, "incomplete": 0}
         if not quiet and err_console.is_terminal:
-            from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
+            from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
             progress = Progress(
                 TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+                TextColumn("{task.fields[status]}"), TimeElapsedColumn(),
                 console=err_console, transient=True,
             )
             progress.start()
@@ -224,18 +246,31 @@ def _run(recipe: Path, lots: tuple[Path, ...], out: Path, as_json: bool, quiet: 
         def started(n: int, lot: Path = lot) -> None:
             nonlocal task
             if progress is not None:
-                task = progress.add_task(f"{lot.name}", total=n)
+                task = progress.add_task(f"{lot.name}", total=n, status="")
             elif not quiet:
-                err_console.print(f"{lot}: {n} images")
+                err_console.print(f"{lot}: {n} images, {jobs} job(s), cache: {store.location}")
 
         def done(result: Any) -> None:
+            counts["done"] += 1
+            counts["steps"] += len(result.steps)
+            counts["reused"] += sum(1 for s in result.steps if s.cache != "computed")
+            counts["incomplete"] += result.status != "ok"
             if progress is not None and task is not None:
-                progress.advance(task)
-            if result.status != "ok" and not quiet:
-                err_console.print(Text(f"incomplete: {result.id}: {result.reason}", style="yellow"))
+                status = f"{counts['reused']}/{counts['steps']} steps reused"
+                if counts["incomplete"]:
+                    status += f", {counts['incomplete']} incomplete"
+                progress.update(task, advance=1, status=status)
+            if not quiet:
+                for note in result.notes:
+                    err_console.print(Text(f"note: {note}", style="yellow"))
+                if result.status != "ok":
+                    reason = result.reason
+                    if not reason.startswith(result.id):
+                        reason = f"{result.id}: {reason}"
+                    err_console.print(Text(f"incomplete: {reason}", style="yellow"))
 
         try:
-            summary = run_lot(checked, lot, out, on_start=started, on_image=done)
+            summary = run_lot(checked, lot, out, store=store, jobs=jobs, on_start=started, on_image=done)
         finally:
             if progress is not None:
                 progress.stop()
@@ -258,15 +293,92 @@ def _run(recipe: Path, lots: tuple[Path, ...], out: Path, as_json: bool, quiet: 
 @click.argument("lots", nargs=-1, required=True, type=click.Path(path_type=Path))
 @click.option("--out", type=click.Path(file_okay=False, path_type=Path), default=Path("runs"),
               show_default=True, help="folder that receives the new run folder")
+@click.option("--jobs", "-j", type=click.IntRange(min=1), default=None,
+              help="images analysed at once, each in its own process [default: usable cores]")
+@click.option("--cache", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="cache folder [default: $LOTPROOF_CACHE or the user cache folder]")
+@click.option("--no-cache", is_flag=True, help="compute everything, store nothing")
 @click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
 @click.option("--quiet", "-q", is_flag=True, help="no progress or messages on stderr")
-def run(recipe: Path, lots: tuple[Path, ...], out: Path, as_json: bool, quiet: bool) -> None:
+def run(recipe: Path, lots: tuple[Path, ...], out: Path, jobs: int | None, cache: Path | None,
+        no_cache: bool, as_json: bool, quiet: bool) -> None:
     """Run RECIPE on each LOT folder; write a new run folder per lot under --out.
 
     Exit 0 when every limit passed, 1 when a limit failed, 3 when an image could not
     be analysed (the lot is incomplete), 2 when the recipe is invalid.
     """
-    raise SystemExit(_run(recipe, lots, out, as_json, quiet))
+    raise SystemExit(
+        _run(recipe, lots, out, as_json, quiet, jobs=jobs, cache=cache, no_cache=no_cache)
+    )
+
+
+# ---------------------------------------------------------------- cache
+
+
+def _size_text(n: float) -> str:
+    for unit in ("B", "KiB", "MiB", "GiB", "TiB"):
+        if n < 1024 or unit == "TiB":
+            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
+        n /= 1024
+    return f"{n} B"
+
+
+def _parse_age(text: str) -> float:
+    import re
+
+    match = re.fullmatch(r"\s*(\d+(?:\.\d+)?)\s*(s|m|h|d|w)\s*", text)
+    if not match:
+        raise click.BadParameter(f"{text!r}: write an age such as 12h, 30d or 2w")
+    factor = {"s": 1, "m": 60, "h": 3600, "d": 86400, "w": 7 * 86400}[match.group(2)]
+    return float(match.group(1)) * factor
+
+
+def _parse_size(text: str) -> int:
+    import re
+
+    match = re.fullmatch(r"\s*(\d+(?:\.\d+)?)\s*(B|KB|MB|GB|TB|KiB|MiB|GiB|TiB)\s*", text)
+    if not match:
+        raise click.BadParameter(f"{text!r}: write a size such as 500MB or 20GiB")
+    factor = {"B": 1, "KB": 1e3, "MB": 1e6, "GB": 1e9, "TB": 1e12,
+              "KiB": 1024, "MiB": 1024**2, "GiB": 1024**3, "TiB": 1024**4}[match.group(2)]
+    return int(float(match.group(1)) * factor)
+
+
+@cli.group(invoke_without_command=True)
+@click.option("--cache", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="cache folder [default: $LOTPROOF_CACHE or the user cache folder]")
+@click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
+@click.pass_context
+def cache(ctx: click.Context, cache: Path | None, as_json: bool) -> None:
+    """Show the cache: location, entries, size (`cache prune` removes entries)."""
+    from runner.cache import DiskStore, default_cache_dir
+
+    store = DiskStore(cache or default_cache_dir())
+    ctx.obj = store
+    if ctx.invoked_subcommand is not None:
+        return
+    stats = store.stats()
+    if as_json:
+        _emit_json({"location": stats.location, "entries": stats.entries, "bytes": stats.bytes})
+        return
+    console = _out()
+    console.print(f"cache: {stats.location}")
+    console.print(f"entries: {stats.entries}")
+    console.print(f"size: {_size_text(stats.bytes)}")
+
+
+@cache.command()
+@click.option("--older-than", "older_than", default=None, help="remove entries unused for this long (e.g. 30d)")
+@click.option("--max-size", "max_size", default=None, help="then remove the least recently used down to this size (e.g. 20GB)")
+@click.pass_obj
+def prune(store: Any, older_than: str | None, max_size: str | None) -> None:
+    """Remove cache entries by age and/or to a size bound."""
+    if older_than is None and max_size is None:
+        raise click.UsageError("give --older-than and/or --max-size")
+    age = _parse_age(older_than) if older_than else None
+    size = _parse_size(max_size) if max_size else None
+    removed, freed = store.prune(older_than_s=age, max_bytes=size)
+    _out().print(f"removed {removed} entries, {_size_text(freed)} freed; {store.stats().entries} left")
 
 
 # ---------------------------------------------------------------- steps
@@ -370,7 +482,7 @@ def demo(out: Path | None, as_json: bool) -> None:
     from runner.demo import demo_paths
 
     recipe, lot, default_out = demo_paths()
-    code = _run(recipe, (lot,), out or default_out, as_json, quiet=False)
+    code = _run(recipe, (lot,), out or default_out, as_json, quiet=False, no_cache=True)
     if code not in (EXIT_OK, EXIT_LIMIT_FAILED, EXIT_BAD_INPUT):
         raise SystemExit(code)
     if not as_json:

@@ -11,14 +11,15 @@ from __future__ import annotations
 import math
 import time
 import traceback
-from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from runner.cache import NullStore, Store
 from runner.errors import InputError
+from runner.hashing import content_checksum, input_key, library_versions, step_key
 from runner.inputs import LoadedImage, Sample, read_image
 from runner.recipe import Recipe
 from steps import REGISTRY, Area, Length, Output, StepParams, Table, resolve_to_px
@@ -31,9 +32,15 @@ CALIBRATION_TOLERANCE = 0.01
 
 @dataclass
 class StepRecord:
+    """One (image, step): its cache key, the checksum of its result, and how it was had."""
+
     step: str
     kind: str
     version: str
+    key: str
+    checksum: str | None
+    #: computed | reused (loaded from the cache) | skipped (cached, and nothing needed it loaded)
+    cache: str
     seconds: float
 
 
@@ -105,14 +112,35 @@ def _spacing(recipe: Recipe, images: list[LoadedImage], result: ImageResult) -> 
     return (size_um,) * spatial
 
 
+def _targets(recipe: Recipe) -> list[str]:
+    """Steps whose results the run reports: measurements, kept steps, limited or valued steps."""
+    limited = {limit.step for limit in recipe.limits.values()}
+    out = []
+    for name in recipe.order:
+        step = recipe.steps[name]
+        kind = REGISTRY[step.kind]
+        if step.keep or name in limited or kind.values or kind.gives in ("table", "values"):
+            out.append(name)
+    return out
+
+
+class _StepFailed(Exception):
+    pass
+
+
 def analyse_sample(
     recipe: Recipe,
     sample: Sample,
     lot: Path,
     *,
-    on_step: Callable[[str, str], None] | None = None,
+    store: Store | None = None,
 ) -> ImageResult:
-    """Run ``recipe`` on one image of the lot; never raises for bad data."""
+    """Run ``recipe`` on one image of the lot; never raises for bad data.
+
+    Every step's result is looked up in ``store`` by its key first; only what is
+    missing is computed, and only what a reported result needs is loaded.
+    """
+    store = store if store is not None else NullStore()
     result = ImageResult(id=sample.id)
     if sample.problem:
         return result.fail(sample.problem)
@@ -127,76 +155,129 @@ def analyse_sample(
         return result.fail(str(err))
     result.spacing = spacing
 
-    data: dict[str, Any] = {name: image.data for name, image in loaded.items()}
-    color: set[str] = {name for name, image in loaded.items() if image.is_color}
-    del loaded
+    keys: dict[str, str] = {
+        name: input_key(image.sha256, image.calibration.as_dict()) for name, image in loaded.items()
+    }
+    resolved: dict[str, StepParams] = {}
     for name in recipe.order:
         step = recipe.steps[name]
         kind = REGISTRY[step.kind]
-        args = [data[source] for source in step.to]
-        for source, arg in zip(step.to, args, strict=True):
-            if source in color and not kind.accepts_color:
-                grays = [n for n, s in recipe.steps.items() if s.kind == "gray"]
-                hint = (
-                    f"step {grays[0]!r} (gray) makes a gray image; apply {name!r} to it"
-                    if grays
-                    else "add a step with apply: gray before it"
-                )
-                return result.fail(
-                    f"step {name!r} ({step.kind}) needs a gray image, but {source!r} of "
-                    f"{sample.id} is a colour image; {hint}"
-                )
-            if isinstance(arg, np.ndarray):
-                ndim = arg.ndim - (1 if source in color else 0)
-                if ndim not in kind.ndims:
-                    dims = " or ".join(f"{d}-D" for d in sorted(kind.ndims))
-                    return result.fail(
-                        f"step {name!r} ({step.kind}) works on {dims} data; {source!r} of "
-                        f"{sample.id} is {ndim}-D (shape {arg.shape})"
-                    )
-        if on_step is not None:
-            on_step(sample.id, name)
-        started = time.perf_counter()
         try:
-            params = resolve_params(step.params, spacing)
-            out = kind.func(params, *args, spacing=spacing)
-        except (ValueError, TypeError, ArithmeticError, MemoryError) as err:
+            resolved[name] = resolve_params(step.params, spacing)
+        except ValueError as err:
             return result.fail(f"step {name!r} ({step.kind}): {err}")
-        except Exception as err:  # a step bug must not end the lot
-            where = traceback.extract_tb(err.__traceback__)[-1]
-            return result.fail(
-                f"step {name!r} ({step.kind}) failed unexpectedly: {type(err).__name__}: {err} "
-                f"(at {Path(where.filename).name}:{where.lineno})"
+        keys[name] = step_key(
+            kind.name, kind.version, resolved[name], spacing,
+            [keys[source] for source in step.to], library_versions(kind.libraries),
+        )
+
+    data: dict[str, Any] = {name: image.data for name, image in loaded.items()}
+    color: set[str] = {name for name, image in loaded.items() if image.is_color}
+    del loaded
+    records: dict[str, StepRecord] = {}
+
+    def get(name: str) -> Any:
+        if name in data:
+            return data[name]
+        step = recipe.steps[name]
+        kind = REGISTRY[step.kind]
+        key = keys[name]
+        started = time.perf_counter()
+        out = store.get(key)
+        if out is not None:
+            records[name] = StepRecord(
+                name, step.kind, kind.version, key, content_checksum(out), "reused",
+                time.perf_counter() - started,
             )
-        seconds = time.perf_counter() - started
-        result.steps.append(StepRecord(name, step.kind, kind.version, seconds))
-        if isinstance(out, Output):
-            for value_name, value in out.values.items():
-                if value_name not in kind.values:
-                    return result.fail(
-                        f"step {name!r} ({step.kind}) reported an undeclared value {value_name!r}"
+        else:
+            args = [_payload(get(source)) for source in step.to]
+            _check_arguments(recipe, name, sample.id, args, color)
+            started = time.perf_counter()
+            try:
+                out = kind.func(resolved[name], *args, spacing=spacing)
+            except (ValueError, TypeError, ArithmeticError, MemoryError) as err:
+                raise _StepFailed(f"step {name!r} ({step.kind}): {err}") from None
+            except Exception as err:  # a step bug must not end the lot
+                where = traceback.extract_tb(err.__traceback__)[-1]
+                raise _StepFailed(
+                    f"step {name!r} ({step.kind}) failed unexpectedly: {type(err).__name__}: "
+                    f"{err} (at {Path(where.filename).name}:{where.lineno})"
+                ) from None
+            seconds = time.perf_counter() - started
+            if isinstance(out, Output):
+                undeclared = set(out.values) - set(kind.values)
+                if undeclared:
+                    raise _StepFailed(
+                        f"step {name!r} ({step.kind}) reported undeclared values {sorted(undeclared)}"
                     )
-                result.values[(name, value_name)] = float(value)
-                result.units[(name, value_name)] = kind.values[value_name]
-            out = out.data
+            checksum = store.put(key, out)
+            records[name] = StepRecord(
+                name, step.kind, kind.version, key, checksum, "computed", seconds
+            )
         data[name] = out
-        if isinstance(out, Table):
-            result.tables[name] = out
-        if step.keep:
-            result.kept[name] = out
-        # Free what no later step needs: peak memory stays at a few images' worth.
-        for source in step.to:
-            if source not in recipe.inputs and not _needed_later(recipe, source, name):
-                data.pop(source, None)
+        return out
+
+    try:
+        for name in _targets(recipe):
+            out = get(name)
+            step = recipe.steps[name]
+            kind = REGISTRY[step.kind]
+            if isinstance(out, Output):
+                for value_name, value in out.values.items():
+                    result.values[(name, value_name)] = float(value)
+                    result.units[(name, value_name)] = kind.values[value_name]
+                out = out.data
+            if isinstance(out, Table):
+                result.tables[name] = out
+            if step.keep:
+                result.kept[name] = out
+    except _StepFailed as err:
+        result.steps = [records[n] for n in recipe.order if n in records]
+        return result.fail(str(err))
+    for name in recipe.order:
+        if name not in records:
+            step = recipe.steps[name]
+            records[name] = StepRecord(
+                name, step.kind, REGISTRY[step.kind].version, keys[name],
+                store.checksum(keys[name]), "skipped", 0.0,
+            )
+    result.steps = [records[n] for n in recipe.order]
     for (step_name, value_name), value in result.values.items():
         if not math.isfinite(value) and value_name in _limited(recipe, step_name):
             result.notes.append(f"{step_name}.{value_name} is undefined for {sample.id}")
     return result
 
 
-def _needed_later(recipe: Recipe, source: str, current: str) -> bool:
-    position = recipe.order.index(current)
-    return any(source in recipe.steps[n].to for n in recipe.order[position + 1 :])
+def _payload(result: Any) -> Any:
+    """What a step hands to the next: its data, without the values it reported."""
+    return result.data if isinstance(result, Output) else result
+
+
+def _check_arguments(
+    recipe: Recipe, name: str, image_id: str, args: list[Any], color: set[str]
+) -> None:
+    step = recipe.steps[name]
+    kind = REGISTRY[step.kind]
+    for source, arg in zip(step.to, args, strict=True):
+        if source in color and not kind.accepts_color:
+            grays = [n for n, s in recipe.steps.items() if s.kind == "gray"]
+            hint = (
+                f"step {grays[0]!r} (gray) makes a gray image; apply {name!r} to it"
+                if grays
+                else "add a step with apply: gray before it"
+            )
+            raise _StepFailed(
+                f"step {name!r} ({step.kind}) needs a gray image, but {source!r} of "
+                f"{image_id} is a colour image; {hint}"
+            )
+        if isinstance(arg, np.ndarray):
+            ndim = arg.ndim - (1 if source in color else 0)
+            if ndim not in kind.ndims:
+                dims = " or ".join(f"{d}-D" for d in sorted(kind.ndims))
+                raise _StepFailed(
+                    f"step {name!r} ({step.kind}) works on {dims} data; {source!r} of "
+                    f"{image_id} is {ndim}-D (shape {arg.shape})"
+                )
 
 
 def _limited(recipe: Recipe, step_name: str) -> set[str]:

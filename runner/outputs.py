@@ -7,6 +7,7 @@ Layout (see DESIGN.md, "Run record")::
     RUN/images.csv       one row per image: status, reason, values, verdicts
     RUN/objects.csv      one row per object of every table-giving step
     RUN/inputs.json      every input file: path, size, sha256, shape, dtype, calibration
+    RUN/steps.csv        every (image, step): cache key, result checksum, computed or reused
     RUN/verdicts.json    every limit and the lot verdict
     RUN/kept/IMAGE/STEP.tif|.csv   results of steps marked keep: true
 """
@@ -190,6 +191,15 @@ def _objects_csv(recipe: Recipe, results: list[ImageResult]) -> bytes:
     return _csv(rows)
 
 
+def _steps_csv(results: list[ImageResult]) -> bytes:
+    rows = [["image", "step", "kind", "version", "key", "checksum", "cache"]]
+    for r in results:
+        for record in r.steps:
+            rows.append([r.id, record.step, record.kind, record.version, record.key,
+                         record.checksum or "", record.cache])
+    return _csv(rows)
+
+
 def _resolved(recipe: Recipe, results: list[ImageResult]) -> dict[str, Any]:
     spacings = sorted({r.spacing for r in results if r.spacing is not None})
     steps = {}
@@ -299,9 +309,10 @@ def write_run_files(
     write_bytes(run / "resolved.json", _json(resolved))
     write_bytes(run / "images.csv", _images_csv(recipe, results, verdicts))
     write_bytes(run / "objects.csv", _objects_csv(recipe, results))
+    write_bytes(run / "steps.csv", _steps_csv(results))
     inputs = {r.id: r.inputs for r in results}
     write_bytes(run / "inputs.json", _json(inputs))
     kept = _write_kept(run, results)
     write_bytes(run / "verdicts.json", _json(verdicts_document(recipe, results, verdicts)))
-    return ["recipe.yaml", "resolved.json", "images.csv", "objects.csv", "inputs.json", *kept,
+    return ["recipe.yaml", "resolved.json", "images.csv", "objects.csv", "steps.csv", "inputs.json", *kept,
             "verdicts.json"]

@@ -2,18 +2,21 @@
 
 from __future__ import annotations
 
+import os
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
+from runner.cache import DiskStore, NullStore, Store
 from runner.errors import EXIT_BAD_INPUT, EXIT_LIMIT_FAILED, EXIT_OK
 from runner.executor import ImageResult, analyse_sample
-from runner.inputs import find_samples
+from runner.inputs import Sample, find_samples
 from runner.limits import FAIL, Verdicts, evaluate_limits
 from runner.outputs import create_run_folder, write_run_files
-from runner.recipe import Recipe, load_recipe
+from runner.recipe import Recipe, load_recipe, parse_recipe
 
-__all__ = ["RunSummary", "exit_code_for", "run_lot"]
+__all__ = ["RunSummary", "analyse_lot", "exit_code_for", "run_lot", "usable_cores"]
 
 
 @dataclass
@@ -24,6 +27,7 @@ class RunSummary:
     results: list[ImageResult]
     verdicts: Verdicts
     files: list[str]
+    cache_location: str = "none"
 
     @property
     def exit_code(self) -> int:
@@ -52,8 +56,16 @@ class RunSummary:
                 }
                 for name, lv in self.verdicts.limits.items()
             },
+            "steps": self.step_counts(),
+            "cache": self.cache_location,
             "exit_code": self.exit_code,
         }
+
+    def step_counts(self) -> dict[str, int]:
+        """(image, step) results computed and reused (loaded or not needed) over the lot."""
+        records = [record for r in self.results for record in r.steps]
+        computed = sum(1 for record in records if record.cache == "computed")
+        return {"computed": computed, "reused": len(records) - computed}
 
 
 def exit_code_for(verdicts: Verdicts) -> int:
@@ -71,15 +83,129 @@ def exit_code_for(verdicts: Verdicts) -> int:
     return EXIT_OK
 
 
+def usable_cores() -> int:
+    """The number of cores this process may run on."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # not on Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def _analyse(recipe: Recipe, sample: Sample, lot: Path, store: Store) -> ImageResult:
+    result = analyse_sample(recipe, sample, lot, store=store)
+    drain = getattr(store, "drain_messages", None)
+    if drain is not None:
+        result.notes.extend(drain())
+    return result
+
+
+# Per worker process: the recipe parsed once, the store opened once.
+_WORKER: dict[str, Any] = {}
+
+
+def _worker_init(recipe_raw: bytes, recipe_path: str, cache_root: str | None) -> None:
+    import steps
+
+    _WORKER["recipe"] = parse_recipe(recipe_raw, recipe_path)
+    _WORKER["store"] = DiskStore(Path(cache_root)) if cache_root else NullStore()
+    warm = getattr(steps, "warm_up", None)
+    if warm is not None:
+        warm()
+
+
+def _worker_task(sample: Sample, lot: str) -> ImageResult:
+    return _analyse(_WORKER["recipe"], sample, Path(lot), _WORKER["store"])
+
+
+_SINGLE_THREAD_ENV = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "NUMBA_NUM_THREADS")
+
+
+def analyse_lot(
+    recipe: Recipe,
+    samples: list[Sample],
+    lot: Path,
+    *,
+    store: Store,
+    jobs: int = 1,
+    on_image: Callable[[ImageResult], None] | None = None,
+) -> list[ImageResult]:
+    """Analyse every sample; results come back in the samples' order for every ``jobs``.
+
+    With ``jobs > 1`` images are analysed in a pool of processes (spawned, each
+    pinned to one thread of BLAS/OpenMP so that N processes use N cores). Each
+    image is read when its task starts and at most ``2 * jobs`` tasks are in flight,
+    so memory does not grow with the size of the lot.
+    """
+    if jobs <= 1 or len(samples) <= 1:
+        results = []
+        for sample in samples:
+            result = _analyse(recipe, sample, lot, store)
+            results.append(result)
+            if on_image is not None:
+                on_image(result)
+        return results
+
+    import concurrent.futures as cf
+    import multiprocessing
+
+    cache_root = store.location if isinstance(store, DiskStore) else None
+    saved = {name: os.environ.get(name) for name in _SINGLE_THREAD_ENV}
+    for name in _SINGLE_THREAD_ENV:
+        os.environ[name] = "1"
+    try:
+        pool = cf.ProcessPoolExecutor(
+            max_workers=min(jobs, len(samples)),
+            mp_context=multiprocessing.get_context("spawn"),
+            initializer=_worker_init,
+            initargs=(recipe.raw, recipe.path, cache_root),
+        )
+    finally:
+        for name, value in saved.items():
+            if value is None:
+                os.environ.pop(name, None)
+            else:
+                os.environ[name] = value
+    results: list[ImageResult | None] = [None] * len(samples)
+    pending: dict[cf.Future[ImageResult], int] = {}
+    queue = list(enumerate(samples))
+    queue.reverse()
+    try:
+        while queue or pending:
+            while queue and len(pending) < 2 * jobs:
+                index, sample = queue.pop()
+                pending[pool.submit(_worker_task, sample, str(lot))] = index
+            done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
+            for future in done:
+                index = pending.pop(future)
+                try:
+                    result = future.result()
+                except Exception as err:  # a worker died: that image is incomplete, not lost
+                    result = ImageResult(id=samples[index].id).fail(
+                        f"the worker analysing it stopped ({type(err).__name__}: {err})"
+                    )
+                results[index] = result
+                if on_image is not None:
+                    on_image(result)
+    except BaseException:
+        pool.shutdown(wait=False, cancel_futures=True)
+        raise
+    pool.shutdown(wait=True)
+    return [r for r in results if r is not None]
+
+
 def run_lot(
     recipe: Recipe | str | Path,
     lot: str | Path,
     out: str | Path,
     *,
+    store: Store | None = None,
+    jobs: int = 1,
     on_start: Callable[[int], None] | None = None,
     on_image: Callable[[ImageResult], None] | None = None,
 ) -> RunSummary:
     """Run ``recipe`` on every image of ``lot`` and write a new run folder under ``out``.
+
+    ``store`` is the cache (``None``: no cache); ``jobs`` the number of processes.
 
     Raises
     ------
@@ -90,17 +216,13 @@ def run_lot(
     """
     if not isinstance(recipe, Recipe):
         recipe = load_recipe(recipe)
+    store = store if store is not None else NullStore()
     lot = Path(lot)
     samples = find_samples(lot, recipe.inputs)
     if on_start is not None:
         on_start(len(samples))
-    results = []
-    for sample in samples:
-        result = analyse_sample(recipe, sample, lot)
-        results.append(result)
-        if on_image is not None:
-            on_image(result)
+    results = analyse_lot(recipe, samples, lot, store=store, jobs=jobs, on_image=on_image)
     verdicts = evaluate_limits(recipe, results)
     run_dir = create_run_folder(Path(out), recipe)
     files = write_run_files(run_dir, recipe, results, verdicts, lot)
-    return RunSummary(run_dir, recipe, lot, results, verdicts, files)
+    return RunSummary(run_dir, recipe, lot, results, verdicts, files, store.location)
