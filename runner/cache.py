@@ -69,8 +69,8 @@ class Store(Protocol):
 
     location: str
 
-    def get(self, key: str) -> Any | None:
-        """The result stored under ``key``, or ``None`` (a miss)."""
+    def get(self, key: str) -> tuple[Any, str] | None:
+        """The result stored under ``key`` and its verified checksum, or ``None`` (a miss)."""
 
     def put(self, key: str, result: Any) -> str:
         """Store ``result`` under ``key``; returns its content checksum."""
@@ -84,7 +84,7 @@ class NullStore:
 
     location = "none"
 
-    def get(self, key: str) -> Any | None:
+    def get(self, key: str) -> tuple[Any, str] | None:
         return None
 
     def put(self, key: str, result: Any) -> str:
@@ -236,7 +236,7 @@ class DiskStore:
             raise _Corrupt("malformed header")
         return header, raw[newline + 1 :]
 
-    def get(self, key: str) -> Any | None:
+    def get(self, key: str) -> tuple[Any, str] | None:
         path = self.path(key)
         try:
             found = self._read_header(path)
@@ -263,7 +263,7 @@ class DiskStore:
             os.utime(path)  # last use, for pruning by age
         except OSError:
             pass
-        return result
+        return result, actual
 
     def checksum(self, key: str) -> str | None:
         path = self.path(key)

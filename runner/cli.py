@@ -28,6 +28,7 @@ from runner.errors import (
     RecipeError,
 )
 from runner.limits import FAIL, INCOMPLETE, PASS
+from runner.outputs import CAUTION
 
 __all__ = ["main", "cli"]
 
@@ -171,9 +172,7 @@ def _print_summary(summary: Any) -> None:
                 failing = [i for i, (_, v) in lv.per_image.items() if v == FAIL]
                 value = f"{len(failing)} of {len(lv.per_image)} images fail" if failing else "every image"
             else:
-                from runner.outputs import format_number
-
-                value = format_number(lv.value) if lv.value is not None else "-"
+                value = f"{lv.value:.6g}" if lv.value is not None else "-"
                 value += "" if lv.unit == "-" else f" {lv.unit}"
             table.add_row(name, value, lv.over, lv.bound_text(), _mark(lv.verdict))
         console.print(table)
@@ -185,17 +184,13 @@ def _print_summary(summary: Any) -> None:
     for step_name, value_name, unit in shown:
         images.add_column(f"{step_name}.{value_name}" + ("" if unit == "-" else f" [{unit}]"))
     images.add_column("note")
-    from runner.outputs import format_number
-
     for r in summary.results:
-        cells = [
-            format_number(round(r.values[(s, v)], 6)) if (s, v) in r.values else "-"
-            for s, v, _ in shown
-        ]
+        cells = [f"{r.values[(s, v)]:.6g}" if (s, v) in r.values else "-" for s, v, _ in shown]
         images.add_row(r.id, _mark(verdicts.image_verdict(r.id)), *cells, Text(r.reason))
     console.print(images)
     console.print(Text("lot verdict: ", style="bold") + _mark(verdicts.lot))
     console.print(f"run folder: {summary.run_dir}")
+    console.print(Text(CAUTION, style="dim"))
 
 
 def _store(cache: Path | None, no_cache: bool) -> Any:

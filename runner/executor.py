@@ -19,7 +19,7 @@ import numpy as np
 
 from runner.cache import NullStore, Store
 from runner.errors import InputError
-from runner.hashing import content_checksum, input_key, library_versions, step_key
+from runner.hashing import input_key, library_versions, step_key
 from runner.inputs import LoadedImage, Sample, read_image
 from runner.recipe import Recipe
 from steps import REGISTRY, Area, Length, Output, StepParams, Table, resolve_to_px
@@ -183,11 +183,11 @@ def analyse_sample(
         kind = REGISTRY[step.kind]
         key = keys[name]
         started = time.perf_counter()
-        out = store.get(key)
-        if out is not None:
+        hit = store.get(key)
+        if hit is not None:
+            out, checksum = hit
             records[name] = StepRecord(
-                name, step.kind, kind.version, key, content_checksum(out), "reused",
-                time.perf_counter() - started,
+                name, step.kind, kind.version, key, checksum, "reused", time.perf_counter() - started
             )
         else:
             args = [_payload(get(source)) for source in step.to]

@@ -113,13 +113,21 @@ def format_number(value: float | int | None) -> str:
     if isinstance(value, (int, np.integer)):
         return str(int(value))
     value = float(value)
-    if math.isnan(value):
+    if value != value:
         return "NaN"
     if math.isinf(value):
         return "Infinity" if value > 0 else "-Infinity"
     if value.is_integer() and abs(value) < 1e15:
         return str(int(value))
     return repr(value)
+
+
+def _column_text(column: np.ndarray) -> list[str]:
+    """``format_number`` of every cell of a column, in one pass over Python scalars."""
+    values = np.asarray(column)
+    if values.dtype.kind in "iub":
+        return [str(int(v)) for v in values.tolist()]
+    return [format_number(v) for v in values.tolist()]
 
 
 def _json(data: Any) -> bytes:
@@ -182,12 +190,12 @@ def _objects_csv(recipe: Recipe, results: list[ImageResult]) -> bytes:
             table = r.tables.get(step_name)
             if table is None:
                 continue
-            cells = [table.columns.get(n) for n, _ in columns]
-            for i in range(table.n_rows):
-                rows.append(
-                    [r.id, step_name]
-                    + [format_number(c[i].item()) if c is not None else "" for c in cells]
-                )
+            cells = [
+                _column_text(table.columns[n]) if n in table.columns else [""] * table.n_rows
+                for n, _ in columns
+            ]
+            prefix = [r.id, step_name]
+            rows.extend(prefix + list(row) for row in zip(*cells, strict=True))
     return _csv(rows)
 
 
@@ -272,10 +280,8 @@ def _write_kept(run: Path, results: list[ImageResult]) -> list[str]:
                 write_bytes(path, buffer.getvalue())
             elif isinstance(data, Table):
                 header = [_header(n, data.units[n]) for n in data.columns]
-                rows = [header] + [
-                    [format_number(c[i].item()) for c in data.columns.values()]
-                    for i in range(data.n_rows)
-                ]
+                texts = [_column_text(c) for c in data.columns.values()]
+                rows = [header] + [list(row) for row in zip(*texts, strict=True)]
                 path = folder / f"{_UNSAFE.sub('_', step_name)}.csv"
                 write_bytes(path, _csv(rows))
             else:

@@ -172,8 +172,8 @@ def test_round_trip_is_exact(tmp_path: Path, index: int) -> None:
     result = _results()[index]
     key = hashlib.sha256(str(index).encode()).hexdigest()
     checksum = store.put(key, result)
-    again = store.get(key)
-    assert content_checksum(again) == checksum == content_checksum(result)
+    again, verified = store.get(key)
+    assert content_checksum(again) == checksum == content_checksum(result) == verified
     assert store.checksum(key) == checksum
     assert store.path(key).parent.name == key[:2]
 
@@ -205,7 +205,7 @@ def test_corrupt_entries_are_misses_reported_once(tmp_path: Path) -> None:
         assert len(messages) == 1 and str(path) in messages[0], what
         assert not path.exists(), what  # removed so the recomputed entry can take its place
         store.put(key, result)
-    assert np.array_equal(store.get(key), result)
+    assert np.array_equal(store.get(key)[0], result)
 
 
 def test_null_store_keeps_nothing() -> None:
@@ -229,7 +229,7 @@ def _writer(root: str, seed: int, rounds: int) -> None:
         data = np.full((64, 64), i % 7, np.uint16)
         store.put(key, data)
         got = store.get(key)
-        assert got is None or np.array_equal(got, data)
+        assert got is None or np.array_equal(got[0], data)
 
 
 def test_concurrent_writers_do_not_corrupt(tmp_path: Path) -> None:
@@ -244,7 +244,7 @@ def test_concurrent_writers_do_not_corrupt(tmp_path: Path) -> None:
     store = DiskStore(root)
     for i in range(7):
         key = hashlib.sha256(str(i).encode()).hexdigest()
-        assert np.array_equal(store.get(key), np.full((64, 64), i, np.uint16))
+        assert np.array_equal(store.get(key)[0], np.full((64, 64), i, np.uint16))
     assert store.drain_messages() == []
     assert not list(root.glob("objects/*/.tmp-*"))
 
@@ -273,7 +273,7 @@ def test_a_killed_writer_leaves_no_entry_that_reads_as_valid(tmp_path: Path) -> 
     store = DiskStore(root)
     for i in range(5):
         got = store.get("%064x" % i)
-        assert got is None or np.array_equal(got, np.full((512, 512), i, np.uint32))
+        assert got is None or np.array_equal(got[0], np.full((512, 512), i, np.uint32))
     assert store.drain_messages() == []  # complete entries only: temporary files are never read
     store.prune(older_than_s=None, max_bytes=None, now=time.time() + 7200)
     assert not list(root.glob("objects/*/.tmp-*"))
