@@ -165,7 +165,8 @@ class LedgerWriter:
         self._last = GENESIS
         self._seal: str | None = None
         try:
-            self._file = open(self.path, "xb")  # noqa: SIM115 - closed by close()
+            # unbuffered: a failed write fails here, not later in close()
+            self._file = open(self.path, "xb", buffering=0)  # noqa: SIM115 - closed by close()
         except FileExistsError:
             raise LedgerWriteError(
                 f"{self.path}: exists already; a ledger is never rewritten"
@@ -196,8 +197,12 @@ class LedgerWriter:
         event = {"seq": self._seq + 1, "type": type, "prev": self._last, **fields}
         line = canonical(event)
         try:
-            self._file.write(line + b"\n")
-            self._file.flush()
+            pending = memoryview(line + b"\n")
+            while pending:
+                written = self._file.write(pending)
+                if not written:
+                    raise OSError(28, "nothing could be written")
+                pending = pending[written:]
             os.fsync(self._file.fileno())
         except OSError as err:
             raise LedgerWriteError(
@@ -526,11 +531,13 @@ def verify_run(
     2. every ``output`` event's file exists with the recorded size and sha256, and
        ``recipe.yaml`` has the sha256 of the ``recipe`` event;
     3. ``SHA256SUMS``, when it is an output, agrees with the ledger line by line;
-    4. every file in the run folder is in an output event (except the ledger and
-       the signature): others are reported as "not recorded";
-    5. the seal equals ``expected_seal`` when one is given (the seal printed at the
+    4. the seal equals ``expected_seal`` when one is given (the seal printed at the
        end of the run); with ``public_key``, ``seal.sig`` verifies over the seal's
-       ASCII hex with Ed25519 (a missing signature is then a failure).
+       ASCII hex with Ed25519 (a missing signature is then a failure);
+    5. every file in the run folder is in an output event (except the ledger and
+       the signature): others are reported as "not recorded". After ``run-end``
+       such a file makes the run altered; in a run that never finished it is
+       expected (written after the last event) and the run is unfinished.
 
     The last line of the ledger is covered only by the seal: without
     ``expected_seal`` or a signature, an edit of the last line that keeps it
@@ -585,10 +592,12 @@ def verify_run(
     if SUMS_FILE in recorded:
         _check_sums(run_dir, recorded, problems)
 
-    for path in sorted(_files_under(run_dir)):
-        if path in recorded or path in (LEDGER_FILE, SIGNATURE_FILE):
-            continue
-        problems.append(f"{path}: not recorded in the ledger (added after the run)")
+    unrecorded = [
+        f"{path}: not recorded in the ledger"
+        + (" (written after its last event)" if not finished else " (added after the run)")
+        for path in sorted(_files_under(run_dir))
+        if path not in recorded and path not in (LEDGER_FILE, SIGNATURE_FILE)
+    ]
 
     if expected_seal is not None and seal != expected_seal.strip().lower():
         problems.append(f"seal: {seal} is not the expected seal {expected_seal}")
@@ -617,9 +626,12 @@ def verify_run(
             except InvalidSignature:
                 problems.append(f"{SIGNATURE_FILE}: the signature does not match the seal and key")
 
+    # A run that stopped early leaves files its ledger never reached: expected, so they
+    # make it unfinished, not altered. After run-end, any such file was added later.
     status: VerifyStatus
     if problems:
         status = "altered"
+        problems.extend(unrecorded)
     elif not finished:
         status = "unfinished"
         problems.append(
@@ -627,6 +639,10 @@ def verify_run(
             + ("empty" if not lines else f"the last event (line {len(lines)}) is not run-end")
             + "; the run never finished"
         )
+        problems.extend(unrecorded)
+    elif unrecorded:
+        status = "altered"
+        problems.extend(unrecorded)
     else:
         status = "intact"
     return VerifyReport(run_dir, status, seal, problems, len(checked), signature, len(lines))
