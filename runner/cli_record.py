@@ -23,6 +23,14 @@ __all__ = ["verify", "keygen_command", "export", "diff", "compare"]
 _STATUS_STYLE = {"intact": "green", "altered": "bold red", "unfinished": "yellow"}
 
 
+def _table(title: str, columns: tuple[str, ...]) -> RichTable:
+    # fold long cells onto more lines: a record's numbers and paths are never cut short
+    table = RichTable(title=title, title_justify="left")
+    for column in columns:
+        table.add_column(column, overflow="fold")
+    return table
+
+
 def _number(value: float | None) -> str:
     from runner.outputs import format_number
 
@@ -61,9 +69,7 @@ def verify(run: Path, key: Path | None, seal: str | None, as_json: bool) -> None
     console.print(f"{report.events} ledger events, {report.checked_files} files checked, "
                   f"signature: {report.signature}")
     if report.problems:
-        table = RichTable(title="problems, first first", title_justify="left")
-        table.add_column("#")
-        table.add_column("problem")
+        table = _table("problems, first first", ("#", "problem"))
         for i, problem in enumerate(report.problems, 1):
             table.add_row(str(i), Text(problem))
         console.print(table)
@@ -182,9 +188,7 @@ def diff(a: str, b: str, as_json: bool) -> None:
             console.print(f"{label}: " + ", ".join(names))
     changes = result.top + result.steps_changed + result.limits_changed
     if changes:
-        table = RichTable(title="changed", title_justify="left")
-        for column in ("where", "a", "b", "note"):
-            table.add_column(column)
+        table = _table("changed", ("where", "a", "b", "note"))
         _change_rows(table, changes)
         console.print(table)
 
@@ -225,9 +229,7 @@ def compare(run_a: Path, run_b: Path, as_json: bool) -> None:
         if names:
             console.print(Text(f"{label}: " + ", ".join(names), style="yellow"))
     if result.limits:
-        table = RichTable(title="limits", title_justify="left")
-        for column in ("limit", "over", "A", "B", "B - A", "verdict A", "verdict B"):
-            table.add_column(column)
+        table = _table("limits", ("limit", "over", "A", "B", "B - A", "verdict A", "verdict B"))
         for lim in result.limits:
             unit = "" if lim.unit in ("-", "") else f" {lim.unit}"
             table.add_row(lim.name, lim.over_b, _number(lim.value_a) + unit,
@@ -235,17 +237,13 @@ def compare(run_a: Path, run_b: Path, as_json: bool) -> None:
                           _mark(lim.verdict_a), _mark(lim.verdict_b))
         console.print(table)
     if result.verdict_changes:
-        table = RichTable(title="verdict changes", title_justify="left")
-        for column in ("image", "what", "A", "B"):
-            table.add_column(column)
+        table = _table("verdict changes", ("image", "what", "A", "B"))
         for c in result.verdict_changes:
             table.add_row(c.image, c.what, _mark(c.a), _mark(c.b))
         console.print(table)
     changed = result.changed_values
     if changed:
-        table = RichTable(title="values that differ", title_justify="left")
-        for column in ("image", "value", "unit", "A", "B", "B - A", "relative"):
-            table.add_column(column)
+        table = _table("values that differ", ("image", "value", "unit", "A", "B", "B - A", "relative"))
         for v in changed:
             relative = "-" if v.relative is None else f"{v.relative:+.3%}"
             table.add_row(v.image, v.column, v.unit, _number(v.a), _number(v.b),
