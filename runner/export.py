@@ -166,6 +166,7 @@ def dsse_envelope(statement: dict[str, Any], private_key: Path) -> dict[str, Any
 
 def _id(*parts: Any) -> str:
     # PROV qualified names: keep letters, digits and - . _ ~; percent-encode the rest
+    # (an image id's own "/" included, so every name reads back to one image and step)
     return "lp:" + "/".join(quote(str(p), safe="-._~") for p in parts)
 
 
@@ -229,7 +230,12 @@ def prov_document(run_dir: Path) -> dict[str, Any]:
         table[f"_:r{count['n']}"] = {f"prov:{k}": v for k, v in fields.items()}
 
     def typed(value: Any) -> Any:
-        return value if value is not None else ""
+        # PROV attribute values are literals: nested records go in as their JSON text
+        if value is None:
+            return ""
+        if isinstance(value, (dict, list)):
+            return canonical(value).decode("utf-8")
+        return value
 
     software = _id("agent", "lotproof", version or "unknown")
     agent[software] = {
@@ -302,7 +308,7 @@ def prov_document(run_dir: Path) -> dict[str, Any]:
         produced[(image, step)] = rid
 
     for e in _of_type(events, "output"):
-        oid = _id("output", e.get("path"))
+        oid = _id("output", *str(e.get("path")).split("/"))
         entity[oid] = {
             "prov:label": typed(e.get("path")),
             "lp:sha256": typed(e.get("sha256")),

@@ -7,6 +7,7 @@ import hashlib
 import json
 import shutil
 from pathlib import Path
+from urllib.parse import quote
 
 import pytest
 from cryptography.hazmat.primitives.serialization import load_pem_public_key
@@ -113,7 +114,8 @@ def test_prov_document_structure(record: Path) -> None:
     assert ("lp:result/disc-01.tif/stats", "lp:step/disc-01.tif/stats") in generated
     agents = document["agent"]
     assert any(a.startswith("lp:agent/lotproof/") for a in agents)
-    assert "lp:agent/user/tester" in agents
+    user = read_ledger(record)[0]["user"]
+    assert user is None or f"lp:agent/user/{quote(user, safe='-._~')}" in agents
     for relation in document["wasAssociatedWith"].values():
         assert relation["prov:agent"] in agents and relation["prov:activity"] in activities
 
