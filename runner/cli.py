@@ -190,6 +190,7 @@ def _print_summary(summary: Any) -> None:
     console.print(images)
     console.print(Text("lot verdict: ", style="bold") + _mark(verdicts.lot))
     console.print(f"run folder: {summary.run_dir}")
+    console.print(f"seal: {summary.seal}" + (" (signed)" if summary.signed else ""))
     console.print(Text(CAUTION, style="dim"))
 
 
@@ -211,6 +212,7 @@ def _run(
     jobs: int | None = None,
     cache: Path | None = None,
     no_cache: bool = False,
+    sign: Path | None = None,
 ) -> int:
     from runner.recipe import load_recipe
     from runner.run import run_lot, usable_cores
@@ -265,7 +267,8 @@ def _run(
                     err_console.print(Text(f"incomplete: {reason}", style="yellow"))
 
         try:
-            summary = run_lot(checked, lot, out, store=store, jobs=jobs, on_start=started, on_image=done)
+            summary = run_lot(checked, lot, out, store=store, jobs=jobs, sign=sign,
+                              on_start=started, on_image=done)
         finally:
             if progress is not None:
                 progress.stop()
@@ -293,18 +296,64 @@ def _run(
 @click.option("--cache", type=click.Path(file_okay=False, path_type=Path), default=None,
               help="cache folder [default: $LOTPROOF_CACHE or the user cache folder]")
 @click.option("--no-cache", is_flag=True, help="compute everything, store nothing")
+@click.option("--sign", type=click.Path(dir_okay=False, exists=True, path_type=Path), default=None,
+              help="Ed25519 private key (from `lotproof keygen`) to sign the run's seal with")
 @click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
 @click.option("--quiet", "-q", is_flag=True, help="no progress or messages on stderr")
 def run(recipe: Path, lots: tuple[Path, ...], out: Path, jobs: int | None, cache: Path | None,
-        no_cache: bool, as_json: bool, quiet: bool) -> None:
+        no_cache: bool, sign: Path | None, as_json: bool, quiet: bool) -> None:
     """Run RECIPE on each LOT folder; write a new run folder per lot under --out.
 
     Exit 0 when every limit passed, 1 when a limit failed, 3 when an image could not
     be analysed (the lot is incomplete), 2 when the recipe is invalid.
     """
     raise SystemExit(
-        _run(recipe, lots, out, as_json, quiet, jobs=jobs, cache=cache, no_cache=no_cache)
+        _run(recipe, lots, out, as_json, quiet, jobs=jobs, cache=cache, no_cache=no_cache, sign=sign)
     )
+
+
+# ---------------------------------------------------------------- rerun
+
+
+@cli.command()
+@click.argument("run_dir", metavar="RUN", type=click.Path(file_okay=False, exists=True, path_type=Path))
+@click.option("--lot", type=click.Path(file_okay=False, exists=True, path_type=Path), default=None,
+              help="find the recorded inputs here, by checksum, if they moved")
+@click.option("--out", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="folder for the rerun's own run folder [default: beside RUN]")
+@click.option("--strict", is_flag=True, help="refuse to start (exit 4) when library versions differ")
+@click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
+def rerun(run_dir: Path, lot: Path | None, out: Path | None, strict: bool, as_json: bool) -> None:
+    """Repeat the run recorded in RUN, without the cache, and prove it gives the same.
+
+    Exit 0 identical, 4 different (or the record is altered), 3 an input is missing or changed.
+    """
+    from runner.rerun import rerun as do_rerun
+
+    report = do_rerun(run_dir, lot=lot, out=out, strict=strict)
+    if as_json:
+        _emit_json(report.as_dict())
+        raise SystemExit(report.exit_code)
+    console = _out()
+    console.print(f"rerun of {run_dir}")
+    console.print(f"new run folder: {report.rerun.run_dir}")
+    if report.identical:
+        console.print(Text(f"identical ✓ ({report.compared} checksums, values and verdicts compared)",
+                           style="green"))
+    else:
+        table = RichTable(title="first difference per image", title_justify="left")
+        for column in ("image", "what", "recorded", "now"):
+            table.add_column(column)
+        for d in report.first_per_image():
+            table.add_row(d.image, d.what, d.recorded, d.now)
+        console.print(table)
+        console.print(Text(f"DIFFERENT ✗ ({len(report.differences)} differences in "
+                           f"{report.compared} comparisons)", style="bold red"))
+    if report.environment:
+        console.print("environment differences that may explain a difference:")
+        for line in report.environment:
+            console.print(f"  - {line}")
+    raise SystemExit(report.exit_code)
 
 
 # ---------------------------------------------------------------- cache
@@ -512,3 +561,7 @@ def main(argv: list[str] | None = None) -> None:
             raise
         sys.exit(EXIT_INTERNAL)
     sys.exit(EXIT_OK)
+
+
+# Commands of the run record (verify, keygen, export, diff, compare) register on `cli`.
+import runner.cli_record  # noqa: E402,F401  isort: skip

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import os
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -12,8 +13,18 @@ from runner.cache import DiskStore, NullStore, Store
 from runner.errors import EXIT_BAD_INPUT, EXIT_LIMIT_FAILED, EXIT_OK
 from runner.executor import ImageResult, analyse_sample
 from runner.inputs import Sample, find_samples
+from runner.ledger import (
+    LEDGER_FILE,
+    SUMS_FILE,
+    LedgerWriter,
+    _load_private_key,
+    git_info,
+    write_sha256sums,
+    write_signature,
+)
 from runner.limits import FAIL, Verdicts, evaluate_limits
 from runner.outputs import create_run_folder, write_run_files
+from runner.provenance import environment, utc_now
 from runner.recipe import Recipe, load_recipe, parse_recipe
 
 __all__ = ["RunSummary", "analyse_lot", "exit_code_for", "run_lot", "usable_cores"]
@@ -28,6 +39,8 @@ class RunSummary:
     verdicts: Verdicts
     files: list[str]
     cache_location: str = "none"
+    seal: str | None = None
+    signed: bool = False
 
     @property
     def exit_code(self) -> int:
@@ -56,6 +69,8 @@ class RunSummary:
                 }
                 for name, lv in self.verdicts.limits.items()
             },
+            "seal": self.seal,
+            "signed": self.signed,
             "steps": self.step_counts(),
             "cache": self.cache_location,
             "exit_code": self.exit_code,
@@ -193,6 +208,22 @@ def analyse_lot(
     return [r for r in results if r is not None]
 
 
+def _image_events(ledger: LedgerWriter, result: ImageResult) -> None:
+    for item in result.inputs:
+        ledger.append(
+            "input", image=result.id, input=item["input"], path=item["path"], size=item["size"],
+            sha256=item["sha256"], shape=item["shape"], dtype=item["dtype"],
+            calibration=item["calibration"],
+        )
+    for record in result.steps:
+        ledger.append(
+            "step", image=result.id, step=record.step, kind=record.kind, version=record.version,
+            key=record.key, checksum=record.checksum, cache=record.cache,
+            seconds=round(record.seconds, 6),
+        )
+    ledger.append("image", image=result.id, status=result.status, reason=result.reason)
+
+
 def run_lot(
     recipe: Recipe | str | Path,
     lot: str | Path,
@@ -200,12 +231,18 @@ def run_lot(
     *,
     store: Store | None = None,
     jobs: int = 1,
+    sign: Path | None = None,
+    rerun_of: str | None = None,
+    samples: list[Sample] | None = None,
     on_start: Callable[[int], None] | None = None,
     on_image: Callable[[ImageResult], None] | None = None,
 ) -> RunSummary:
     """Run ``recipe`` on every image of ``lot`` and write a new run folder under ``out``.
 
-    ``store`` is the cache (``None``: no cache); ``jobs`` the number of processes.
+    ``store`` is the cache (``None``: no cache); ``jobs`` the number of processes;
+    ``sign`` a private Ed25519 key to sign the seal with. The run folder and its
+    ledger are created before the first image is read, so an interrupted run leaves
+    a folder that ``verify`` reports as unfinished.
 
     Raises
     ------
@@ -218,11 +255,57 @@ def run_lot(
         recipe = load_recipe(recipe)
     store = store if store is not None else NullStore()
     lot = Path(lot)
-    samples = find_samples(lot, recipe.inputs)
-    if on_start is not None:
-        on_start(len(samples))
-    results = analyse_lot(recipe, samples, lot, store=store, jobs=jobs, on_image=on_image)
-    verdicts = evaluate_limits(recipe, results)
+    if samples is None:
+        samples = find_samples(lot, recipe.inputs)
+    if sign is not None:
+        _load_private_key(sign)  # a bad key fails before anything runs
     run_dir = create_run_folder(Path(out), recipe)
-    files = write_run_files(run_dir, recipe, results, verdicts, lot)
-    return RunSummary(run_dir, recipe, lot, results, verdicts, files, store.location)
+    with LedgerWriter(run_dir / LEDGER_FILE) as ledger:
+        start = environment()
+        if rerun_of is not None:
+            start["rerun_of"] = rerun_of
+        start["lot"] = str(lot)
+        start["cache"] = store.location
+        start["jobs"] = jobs
+        ledger.append("run-start", **start)
+        ledger.append(
+            "recipe", path=recipe.path, sha256=recipe.sha256, name=recipe.name,
+            revision=recipe.revision, git=git_info(Path(recipe.path)),
+        )
+        if on_start is not None:
+            on_start(len(samples))
+
+        def done(result: ImageResult) -> None:
+            _image_events(ledger, result)
+            if on_image is not None:
+                on_image(result)
+
+        results = analyse_lot(recipe, samples, lot, store=store, jobs=jobs, on_image=done)
+        verdicts = evaluate_limits(recipe, results)
+        files = write_run_files(run_dir, recipe, results, verdicts, lot)
+        for name, lv in verdicts.limits.items():
+            ledger.append(
+                "verdict", limit=name, value=lv.value, unit=lv.unit, over=lv.over,
+                bound=lv.bound_text(), verdict=lv.verdict,
+            )
+        ledger.append("lot-verdict", verdict=verdicts.lot)
+        write_sha256sums(run_dir, files)
+        files.append(SUMS_FILE)
+        for name in files:
+            path = run_dir / name
+            ledger.append("output", path=name, sha256=_sha256_of(path), size=path.stat().st_size)
+        summary = RunSummary(run_dir, recipe, lot, results, verdicts, files, store.location)
+        seal = ledger.append("run-end", time_utc=utc_now(), exit_code=summary.exit_code)
+    summary.seal = seal
+    if sign is not None:
+        write_signature(run_dir, seal, sign)
+        summary.signed = True
+    return summary
+
+
+def _sha256_of(path: Path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()

@@ -347,7 +347,8 @@ def _run_files(run: Path) -> dict[str, bytes]:
     return {
         p.relative_to(run).as_posix(): p.read_bytes()
         for p in sorted(run.rglob("*"))
-        if p.is_file() and p.name != "resolved.json"
+        # the ledger holds timings and the command line; everything else must be identical
+        if p.is_file() and p.name not in ("resolved.json", "ledger.jsonl")
     }
 
 
