@@ -87,8 +87,9 @@ class LedgerError(LotproofError, ValueError):
     exit_code = EXIT_INTEGRITY
 
 
-class LedgerWriteError(LotproofError, OSError):
-    """The ledger cannot be written (exit 3, like any run folder that cannot be written).
+class LedgerWriteError(LedgerError, OSError):
+    """The ledger or a record file cannot be written (exit 3, like any run folder
+    that cannot be written, not 4: nothing was found altered).
 
     The ledger is evidence: a failed write ends the run, it is never a warning.
     """

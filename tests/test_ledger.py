@@ -194,6 +194,7 @@ def test_writer_never_reuses_a_file(tmp_path: Path) -> None:
     with pytest.raises(LedgerWriteError, match="exists already") as info:
         LedgerWriter(path)
     assert info.value.exit_code == EXIT_BAD_INPUT
+    assert isinstance(info.value, LedgerError) and isinstance(info.value, OSError)
 
 
 def test_writer_refuses_reserved_fields_and_writes_after_close(tmp_path: Path) -> None:
