@@ -45,7 +45,16 @@ __all__ = [
     "erode_reference",
     "dilate_reference",
     "chords",
+    "METHODS",
+    "choose_method",
 ]
+
+#: Kernels :func:`erode` and :func:`dilate` can be told to use: ``auto`` picks
+#: by footprint (:func:`choose_method`); ``numba-box`` (separable, full boxes
+#: only) and ``numba-chords`` are compiled; ``scipy-chords`` is the same chord
+#: decomposition by ``scipy.ndimage.minimum_filter1d``; ``reference`` is the
+#: plain definition.
+METHODS: tuple[str, ...] = ("auto", "numba-box", "numba-chords", "scipy-chords", "reference")
 
 #: The dtypes the kernels accept; each one's extreme values are exact as a
 #: float64, which scipy's ``cval`` passes through.
@@ -284,7 +293,118 @@ def _fast(image: np.ndarray, footprint: np.ndarray, operation: str) -> np.ndarra
     return _restore(out, image.dtype)
 
 
-def erode(image: np.ndarray, footprint: np.ndarray) -> np.ndarray:
+def _numba(
+    image: np.ndarray, footprint: np.ndarray, operation: str, box: bool, strip: int | None = None
+) -> np.ndarray:
+    """The compiled kernels of :mod:`steps._morph_numba`; ``strip`` overrides the chord strip."""
+    from steps import _morph_numba as nb
+
+    work = np.ascontiguousarray(image)
+    if work.dtype == np.bool_:
+        work = work.view(np.uint8)
+    cval = work.dtype.type(_cval(image.dtype, operation))
+    mode = 0 if operation == "erode" else 1
+    normalize = work.dtype.kind == "f"
+    out = np.empty(work.shape, dtype=work.dtype)
+    if box:
+        if work.ndim == 2:
+            nb.box_kernel(work, footprint.shape[1], footprint.shape[0], mode, cval, normalize, out)
+        else:
+            depth, height, width = footprint.shape
+            for z in range(work.shape[0]):
+                nb.box_kernel(work[z], width, height, mode, cval, normalize, out[z])
+            if depth > 1:
+                planes = out.reshape(work.shape[0], -1)
+                # the planes are already free of -0.0; the second pass reads its own output
+                nb.box_kernel(planes.copy(), 1, depth, mode, cval, False, planes)
+        return _restore(out, image.dtype)
+    runs = chords(footprint)
+    lengths = sorted({length for _, _, length in runs})
+    index = {length: i for i, length in enumerate(lengths)}
+    leads = np.array([lead for lead, _, _ in runs], dtype=np.int64).reshape(len(runs), -1)
+    if work.ndim == 2:
+        dz, dy = np.zeros(len(runs), dtype=np.int64), leads[:, 0]
+        ny = work.shape[0]
+    else:
+        dz, dy = leads[:, 0], leads[:, 1]
+        ny = work.shape[1]
+    start = np.array([s for _, s, _ in runs], dtype=np.int64)
+    which = np.array([index[length] for _, _, length in runs], dtype=np.int64)
+    padl = max(0, -int(start.min()))
+    padr = max(0, max(s + length - 1 for _, s, length in runs))
+    nb.chord_kernel(
+        work.reshape(-1, work.shape[-1]),
+        ny,
+        np.ascontiguousarray(dz),
+        np.ascontiguousarray(dy),
+        start,
+        which,
+        np.array(lengths, dtype=np.int64),
+        padl,
+        padr,
+        mode,
+        cval,
+        normalize,
+        _strip(work, footprint, len(lengths)) if strip is None else strip,
+        out.reshape(-1, work.shape[-1]),
+    )
+    return _restore(out, image.dtype)
+
+
+#: Bytes of first-level data cache the chord kernel aims to stay within.
+_CACHE_BYTES = 256 * 1024
+
+
+def _strip(work: np.ndarray, footprint: np.ndarray, n_lengths: int) -> int:
+    """Column strip width for the chord kernel: its busy rows fit the cache, in whole vectors."""
+    # output rows between the first and the last chord reaching them, plus the tables
+    rows = footprint.shape[-2] + n_lengths + 4
+    if work.ndim == 3:
+        rows += (footprint.shape[0] - 1) * work.shape[1]
+    strip = _CACHE_BYTES // (rows * work.itemsize)
+    return int(min(work.shape[-1], max(64, strip - strip % 64)))
+
+
+def choose_method(image: np.ndarray, footprint: np.ndarray) -> str:
+    """The kernel :func:`erode` and :func:`dilate` use for ``method="auto"``.
+
+    Parameters
+    ----------
+    image : ndarray
+        The data (only its dtype and shape matter).
+    footprint : ndarray of bool
+
+    Returns
+    -------
+    str
+        ``"numba-box"`` for a full box (square, rectangle, cube, axis-aligned
+        line), ``"numba-chords"`` for every other footprint. Both are the
+        fastest measured on every case of ``bench/bench_kernels.py``.
+    """
+    return "numba-box" if np.asarray(footprint).all() else "numba-chords"
+
+
+def _dispatch(image: np.ndarray, footprint: np.ndarray, operation: str, method: str) -> np.ndarray:
+    if method == "auto":
+        method = choose_method(image, footprint)
+    if method == "reference":
+        offsets = _offsets(footprint)
+        return _reference(image, offsets if operation == "erode" else -offsets, operation)
+    if operation == "dilate":
+        # max f(x - b) over B is max f(x + b) over the reflected footprint
+        footprint = footprint[(slice(None, None, -1),) * footprint.ndim]
+    if method == "scipy-chords":
+        return _fast(image, footprint, operation)
+    if method == "numba-chords":
+        return _numba(image, footprint, operation, box=False)
+    if method == "numba-box":
+        if not footprint.all():
+            raise ValueError("method 'numba-box' needs a footprint that is a full box")
+        return _numba(image, footprint, operation, box=True)
+    raise ValueError(f"unknown method {method!r}; use one of {', '.join(METHODS)}")
+
+
+def erode(image: np.ndarray, footprint: np.ndarray, *, method: str = "auto") -> np.ndarray:
     """Flat erosion ``min_{b in B} f(x + b)``, outside ignored; equal to :func:`erode_reference`.
 
     Parameters
@@ -293,6 +413,9 @@ def erode(image: np.ndarray, footprint: np.ndarray) -> np.ndarray:
         2-D or 3-D, one of :data:`SUPPORTED_DTYPES`, finite.
     footprint : ndarray of bool
         Same number of axes, odd sizes, holding its centre.
+    method : str
+        One of :data:`METHODS`: ``"auto"`` (default, :func:`choose_method`),
+        or a kernel forced by name, so tests can check each one.
 
     Returns
     -------
@@ -301,21 +424,30 @@ def erode(image: np.ndarray, footprint: np.ndarray) -> np.ndarray:
 
     Notes
     -----
-    Boxes are separable. Other footprints are decomposed into chords along the
-    last axis (a 1-D minimum per distinct chord length, shifted into place for
-    each chord), the chord-table idea of Urbach & Wilkinson.
+    Full boxes are separable: a running minimum along the rows, then along
+    the columns (and planes) by the van Herk / Gil-Werman algorithm. Other
+    footprints are decomposed into chords along the last axis (a running
+    minimum per distinct chord length, shifted into place for each chord),
+    the chord method of Urbach & Wilkinson. Every method gives the same bits.
 
     References
     ----------
     .. [1] E. R. Urbach and M. H. F. Wilkinson, "Efficient 2-D grayscale
        morphological transformations with arbitrary flat structuring
        elements", IEEE Transactions on Image Processing 17(1), 1-8, 2008.
+       https://doi.org/10.1109/TIP.2007.912582
+    .. [2] M. van Herk, "A fast algorithm for local minimum and maximum
+       filters on rectangular and octagonal kernels", Pattern Recognition
+       Letters 13(7), 517-521, 1992. https://doi.org/10.1016/0167-8655(92)90069-C
+    .. [3] J. Gil and M. Werman, "Computing 2-D min, median, and max
+       filters", IEEE Transactions on Pattern Analysis and Machine
+       Intelligence 15(5), 504-507, 1993. https://doi.org/10.1109/34.211471
     """
     _check(image, footprint)
-    return _fast(image, np.asarray(footprint), "erode")
+    return _dispatch(image, np.asarray(footprint), "erode", method)
 
 
-def dilate(image: np.ndarray, footprint: np.ndarray) -> np.ndarray:
+def dilate(image: np.ndarray, footprint: np.ndarray, *, method: str = "auto") -> np.ndarray:
     """Flat dilation ``max_{b in B} f(x - b)``, outside ignored; equal to :func:`dilate_reference`.
 
     Parameters
@@ -324,6 +456,8 @@ def dilate(image: np.ndarray, footprint: np.ndarray) -> np.ndarray:
         2-D or 3-D, one of :data:`SUPPORTED_DTYPES`, finite.
     footprint : ndarray of bool
         Same number of axes, odd sizes, holding its centre.
+    method : str
+        One of :data:`METHODS`; see :func:`erode`.
 
     Returns
     -------
@@ -332,9 +466,8 @@ def dilate(image: np.ndarray, footprint: np.ndarray) -> np.ndarray:
 
     Notes
     -----
-    The maximum over the reflected footprint, by the same chord decomposition
-    as :func:`erode`.
+    The maximum over the reflected footprint, by the same kernels as
+    :func:`erode`.
     """
     _check(image, footprint)
-    fp = np.asarray(footprint)
-    return _fast(image, fp[(slice(None, None, -1),) * fp.ndim], "dilate")
+    return _dispatch(image, np.asarray(footprint), "dilate", method)
