@@ -11,6 +11,7 @@ from __future__ import annotations
 import math
 import time
 import traceback
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -61,6 +62,10 @@ class ImageResult:
     kept: dict[str, Any] = field(default_factory=dict)
     steps: list[StepRecord] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+    #: host:pid of the process that analysed the image
+    worker: str = ""
+    #: small display arrays for the report (see runner.figures.preview_arrays)
+    preview: dict[str, Any] = field(default_factory=dict)
 
     def fail(self, reason: str) -> ImageResult:
         self.status = "incomplete"
@@ -134,11 +139,16 @@ def analyse_sample(
     lot: Path,
     *,
     store: Store | None = None,
+    preview: bool = False,
+    capture: tuple[str, ...] = (),
 ) -> ImageResult:
     """Run ``recipe`` on one image of the lot; never raises for bad data.
 
     Every step's result is looked up in ``store`` by its key first; only what is
     missing is computed, and only what a reported result needs is loaded.
+    ``preview`` adds small display arrays (the image and the measured objects) for
+    the report; ``capture`` names steps whose data are returned in ``kept`` as if
+    they were marked ``keep: true`` (the contact sheet of ``lotproof preview``).
     """
     store = store if store is not None else NullStore()
     result = ImageResult(id=sample.id)
@@ -217,8 +227,9 @@ def analyse_sample(
         data[name] = out
         return out
 
+    wanted = _targets(recipe) + [n for n in capture if n in recipe.order and n not in _targets(recipe)]
     try:
-        for name in _targets(recipe):
+        for name in wanted:
             out = get(name)
             step = recipe.steps[name]
             kind = REGISTRY[step.kind]
@@ -229,8 +240,10 @@ def analyse_sample(
                 out = out.data
             if isinstance(out, Table):
                 result.tables[name] = out
-            if step.keep:
+            if step.keep or name in capture:
                 result.kept[name] = out
+        if preview:
+            result.preview = _preview(recipe, get)
     except _StepFailed as err:
         result.steps = [records[n] for n in recipe.order if n in records]
         return result.fail(str(err))
@@ -246,6 +259,26 @@ def analyse_sample(
         if not math.isfinite(value) and value_name in _limited(recipe, step_name):
             result.notes.append(f"{step_name}.{value_name} is undefined for {sample.id}")
     return result
+
+
+def _preview(recipe: Recipe, get: Callable[[str], Any]) -> dict[str, Any]:
+    """Display arrays: the first input, outlined with what the first measuring step measured."""
+    from runner.figures import preview_arrays
+
+    first_input = next(iter(recipe.inputs))
+    measured = next(
+        (n for n in recipe.order if REGISTRY[recipe.steps[n].kind].gives in ("table", "values")), None
+    )
+    objects = None
+    if measured is not None:
+        source = recipe.steps[measured].to[0]
+        candidate = _payload(get(source))
+        if isinstance(candidate, np.ndarray):
+            objects = candidate
+    image = get(first_input)
+    if not isinstance(image, np.ndarray):
+        return {}
+    return preview_arrays(image, objects)
 
 
 def _payload(result: Any) -> Any:

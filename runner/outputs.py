@@ -10,6 +10,7 @@ Layout (see DESIGN.md, "Run record")::
     RUN/steps.csv        every (image, step): cache key, result checksum, computed or reused
     RUN/verdicts.json    every limit and the lot verdict
     RUN/kept/IMAGE/STEP.tif|.csv   results of steps marked keep: true
+    RUN/figures/IMAGE.thumbnail.png, IMAGE.overlay.png   for people to look at
 """
 
 from __future__ import annotations
@@ -287,6 +288,20 @@ def _write_kept(run: Path, results: list[ImageResult]) -> list[str]:
             else:
                 continue
             written.append(path.relative_to(run).as_posix())
+    return written
+
+
+def write_previews(run: Path, result: ImageResult) -> list[str]:
+    """``figures/IMAGE.thumbnail.png`` and ``figures/IMAGE.overlay.png`` of one image."""
+    from PIL import Image
+
+    written = []
+    for name, array in sorted(result.preview.items()):
+        buffer = io.BytesIO()
+        Image.fromarray(array).save(buffer, format="PNG", optimize=False)
+        path = run / "figures" / f"{_kept_name(result.id).replace('/', '__')}.{name}.png"
+        write_bytes(path, buffer.getvalue())
+        written.append(path.relative_to(run).as_posix())
     return written
 
 

@@ -9,9 +9,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from runner.cache import DiskStore, NullStore, Store
+from runner.cache import NullStore, Store
 from runner.errors import EXIT_BAD_INPUT, EXIT_LIMIT_FAILED, EXIT_OK
-from runner.executor import ImageResult, analyse_sample
+from runner.executor import ImageResult
 from runner.inputs import Sample, find_samples
 from runner.ledger import (
     LEDGER_FILE,
@@ -23,11 +23,12 @@ from runner.ledger import (
     write_signature,
 )
 from runner.limits import FAIL, Verdicts, evaluate_limits
-from runner.outputs import create_run_folder, write_run_files
+from runner.outputs import create_run_folder, write_previews, write_run_files
 from runner.provenance import environment, utc_now
-from runner.recipe import Recipe, load_recipe, parse_recipe
+from runner.pool import LocalExecutor, LotExecutor, usable_cores
+from runner.recipe import Recipe, load_recipe
 
-__all__ = ["RunSummary", "analyse_lot", "exit_code_for", "run_lot", "usable_cores"]
+__all__ = ["RunSummary", "exit_code_for", "run_lot", "usable_cores"]
 
 
 @dataclass
@@ -98,117 +99,7 @@ def exit_code_for(verdicts: Verdicts) -> int:
     return EXIT_OK
 
 
-def usable_cores() -> int:
-    """The number of cores this process may run on."""
-    try:
-        return max(1, len(os.sched_getaffinity(0)))
-    except AttributeError:  # not on Linux
-        return max(1, os.cpu_count() or 1)
-
-
-def _analyse(recipe: Recipe, sample: Sample, lot: Path, store: Store) -> ImageResult:
-    result = analyse_sample(recipe, sample, lot, store=store)
-    drain = getattr(store, "drain_messages", None)
-    if drain is not None:
-        result.notes.extend(drain())
-    return result
-
-
-# Per worker process: the recipe parsed once, the store opened once.
-_WORKER: dict[str, Any] = {}
-
-
-def _worker_init(recipe_raw: bytes, recipe_path: str, cache_root: str | None) -> None:
-    import steps
-
-    _WORKER["recipe"] = parse_recipe(recipe_raw, recipe_path)
-    _WORKER["store"] = DiskStore(Path(cache_root)) if cache_root else NullStore()
-    warm = getattr(steps, "warm_up", None)
-    if warm is not None:
-        warm()
-
-
-def _worker_task(sample: Sample, lot: str) -> ImageResult:
-    return _analyse(_WORKER["recipe"], sample, Path(lot), _WORKER["store"])
-
-
-_SINGLE_THREAD_ENV = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "NUMBA_NUM_THREADS")
-
-
-def analyse_lot(
-    recipe: Recipe,
-    samples: list[Sample],
-    lot: Path,
-    *,
-    store: Store,
-    jobs: int = 1,
-    on_image: Callable[[ImageResult], None] | None = None,
-) -> list[ImageResult]:
-    """Analyse every sample; results come back in the samples' order for every ``jobs``.
-
-    With ``jobs > 1`` images are analysed in a pool of processes (spawned, each
-    pinned to one thread of BLAS/OpenMP so that N processes use N cores). Each
-    image is read when its task starts and at most ``2 * jobs`` tasks are in flight,
-    so memory does not grow with the size of the lot.
-    """
-    if jobs <= 1 or len(samples) <= 1:
-        results = []
-        for sample in samples:
-            result = _analyse(recipe, sample, lot, store)
-            results.append(result)
-            if on_image is not None:
-                on_image(result)
-        return results
-
-    import concurrent.futures as cf
-    import multiprocessing
-
-    cache_root = store.location if isinstance(store, DiskStore) else None
-    saved = {name: os.environ.get(name) for name in _SINGLE_THREAD_ENV}
-    for name in _SINGLE_THREAD_ENV:
-        os.environ[name] = "1"
-    try:
-        pool = cf.ProcessPoolExecutor(
-            max_workers=min(jobs, len(samples)),
-            mp_context=multiprocessing.get_context("spawn"),
-            initializer=_worker_init,
-            initargs=(recipe.raw, recipe.path, cache_root),
-        )
-    finally:
-        for name, value in saved.items():
-            if value is None:
-                os.environ.pop(name, None)
-            else:
-                os.environ[name] = value
-    results: list[ImageResult | None] = [None] * len(samples)
-    pending: dict[cf.Future[ImageResult], int] = {}
-    queue = list(enumerate(samples))
-    queue.reverse()
-    try:
-        while queue or pending:
-            while queue and len(pending) < 2 * jobs:
-                index, sample = queue.pop()
-                pending[pool.submit(_worker_task, sample, str(lot))] = index
-            done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
-            for future in done:
-                index = pending.pop(future)
-                try:
-                    result = future.result()
-                except Exception as err:  # a worker died: that image is incomplete, not lost
-                    result = ImageResult(id=samples[index].id).fail(
-                        f"the worker analysing it stopped ({type(err).__name__}: {err})"
-                    )
-                results[index] = result
-                if on_image is not None:
-                    on_image(result)
-    except BaseException:
-        pool.shutdown(wait=False, cancel_futures=True)
-        raise
-    pool.shutdown(wait=True)
-    return [r for r in results if r is not None]
-
-
-def _image_events(ledger: LedgerWriter, result: ImageResult) -> None:
+def _image_events(ledger: LedgerWriter, recipe: Recipe, result: ImageResult) -> None:
     for item in result.inputs:
         ledger.append(
             "input", image=result.id, input=item["input"], path=item["path"], size=item["size"],
@@ -218,10 +109,12 @@ def _image_events(ledger: LedgerWriter, result: ImageResult) -> None:
     for record in result.steps:
         ledger.append(
             "step", image=result.id, step=record.step, kind=record.kind, version=record.version,
-            key=record.key, checksum=record.checksum, cache=record.cache,
-            seconds=round(record.seconds, 6),
+            to=list(recipe.steps[record.step].to), key=record.key, checksum=record.checksum,
+            cache=record.cache, seconds=round(record.seconds, 6),
         )
-    ledger.append("image", image=result.id, status=result.status, reason=result.reason)
+    ledger.append(
+        "image", image=result.id, status=result.status, reason=result.reason, worker=result.worker
+    )
 
 
 def run_lot(
@@ -231,6 +124,7 @@ def run_lot(
     *,
     store: Store | None = None,
     jobs: int = 1,
+    executor: LotExecutor | None = None,
     sign: Path | None = None,
     rerun_of: str | None = None,
     samples: list[Sample] | None = None,
@@ -239,8 +133,9 @@ def run_lot(
 ) -> RunSummary:
     """Run ``recipe`` on every image of ``lot`` and write a new run folder under ``out``.
 
-    ``store`` is the cache (``None``: no cache); ``jobs`` the number of processes;
-    ``sign`` a private Ed25519 key to sign the seal with. The run folder and its
+    ``store`` is the cache (``None``: no cache); ``executor`` where images are
+    analysed (default: a local pool of ``jobs`` processes); ``sign`` a private
+    Ed25519 key to sign the seal with. The run folder and its
     ledger are created before the first image is read, so an interrupted run leaves
     a folder that ``verify`` reports as unfinished.
 
@@ -254,6 +149,7 @@ def run_lot(
     if not isinstance(recipe, Recipe):
         recipe = load_recipe(recipe)
     store = store if store is not None else NullStore()
+    executor = executor if executor is not None else LocalExecutor(jobs)
     lot = Path(lot)
     if samples is None:
         samples = find_samples(lot, recipe.inputs)
@@ -266,7 +162,7 @@ def run_lot(
             start["rerun_of"] = rerun_of
         start["lot"] = str(lot)
         start["cache"] = store.location
-        start["jobs"] = jobs
+        start["executor"] = executor.description
         ledger.append("run-start", **start)
         ledger.append(
             "recipe", path=recipe.path, sha256=recipe.sha256, name=recipe.name,
@@ -275,14 +171,19 @@ def run_lot(
         if on_start is not None:
             on_start(len(samples))
 
+        figures: list[str] = []
+
         def done(result: ImageResult) -> None:
-            _image_events(ledger, result)
+            # write the small display images now, so the parent never holds a lot's worth
+            figures.extend(write_previews(run_dir, result))
+            result.preview = {}
+            _image_events(ledger, recipe, result)
             if on_image is not None:
                 on_image(result)
 
-        results = analyse_lot(recipe, samples, lot, store=store, jobs=jobs, on_image=done)
+        results = executor.map(recipe, samples, lot, store, done)
         verdicts = evaluate_limits(recipe, results)
-        files = write_run_files(run_dir, recipe, results, verdicts, lot)
+        files = write_run_files(run_dir, recipe, results, verdicts, lot) + sorted(figures)
         for name, lv in verdicts.limits.items():
             ledger.append(
                 "verdict", limit=name, value=lv.value, unit=lv.unit, over=lv.over,
