@@ -330,6 +330,16 @@ def _numba(
         ny = work.shape[1]
     start = np.array([s for _, s, _ in runs], dtype=np.int64)
     which = np.array([index[length] for _, _, length in runs], dtype=np.int64)
+    # chords with the same length and start read the same table slice: pair them
+    partner = np.full(len(runs), -1, dtype=np.int64)
+    waiting: dict[tuple[int, int], int] = {}
+    for c, (_, s, length) in enumerate(runs):
+        key = (length, s)
+        if key in waiting:
+            partner[waiting.pop(key)] = c
+            partner[c] = -2
+        else:
+            waiting[key] = c
     padl = max(0, -int(start.min()))
     padr = max(0, max(s + length - 1 for _, s, length in runs))
     nb.chord_kernel(
@@ -339,6 +349,7 @@ def _numba(
         np.ascontiguousarray(dy),
         start,
         which,
+        partner,
         np.array(lengths, dtype=np.int64),
         padl,
         padr,

@@ -84,6 +84,33 @@ def _update(mode, dst, a, n):
 
 
 @numba.njit(cache=True, nogil=True, boundscheck=False, inline="always")
+def _update2(mode, dst1, dst2, a, n):
+    """``dst1[j] = op(dst1[j], a[j])`` and the same for ``dst2``, reading ``a`` once."""
+    if mode == 0:
+        for j in range(n):
+            v = a[j]
+            u = dst1[j]
+            dst1[j] = u if u < v else v
+            u = dst2[j]
+            dst2[j] = u if u < v else v
+    else:
+        for j in range(n):
+            v = a[j]
+            u = dst1[j]
+            dst1[j] = u if u > v else v
+            u = dst2[j]
+            dst2[j] = u if u > v else v
+
+
+@numba.njit(cache=True, nogil=True, boundscheck=False, inline="always")
+def _target(oz, oy, nz, ny):
+    """Flat index of output row (oz, oy), or -1 outside the image."""
+    if oz < 0 or oz >= nz or oy < 0 or oy >= ny:
+        return -1
+    return oz * ny + oy
+
+
+@numba.njit(cache=True, nogil=True, boundscheck=False, inline="always")
 def _copy(dst, a, n):
     for j in range(n):
         dst[j] = a[j]
@@ -171,7 +198,7 @@ def _running(mode, length, dst, tmp, have_arr, have):
 
 @_jit
 def chord_kernel(
-    src, ny, dz, dy, start, which, lengths, padl, padr, mode, cval, normalize, strip, out
+    src, ny, dz, dy, start, which, partner, lengths, padl, padr, mode, cval, normalize, strip, out
 ):
     """Erode (mode 0) or dilate (mode 1) the rows of ``src`` by a chord decomposition.
 
@@ -183,6 +210,10 @@ def chord_kernel(
     dz, dy, start, which : 1-D int64 arrays, one entry per chord
         Plane and row offsets, offset of the first pixel along the row, and
         index into ``lengths`` of the chord's length.
+    partner : 1-D int64 array, one entry per chord
+        Index of a later chord with the same length and start (its table slice
+        is then read once for both), -1 for none, -2 for a chord that is
+        another's partner and handled with it.
     lengths : 1-D int64 array, increasing
         The distinct chord lengths.
     padl, padr : int
@@ -227,19 +258,25 @@ def chord_kernel(
                         lengths[k - 1],
                     )
                 for c in range(nc):
-                    oz = z - dz[c]
-                    oy = y - dy[c]
-                    if oz < 0 or oz >= nz or oy < 0 or oy >= ny:
-                        continue  # that chord reaches this row only from outside the image
-                    o = oz * ny + oy
+                    if partner[c] == -2:
+                        continue
                     a0 = start[c] + padl
                     part = table[which[c], a0 : a0 + sw]
-                    dst = out[o, x0 : x0 + sw]
-                    if ready[o]:
-                        _update(mode, dst, part, sw)
-                    else:
-                        _copy(dst, part, sw)
-                        ready[o] = True
+                    o1 = _target(z - dz[c], y - dy[c], nz, ny)
+                    p = partner[c]
+                    o2 = -1 if p < 0 else _target(z - dz[p], y - dy[p], nz, ny)
+                    if o1 >= 0 and o2 >= 0 and ready[o1] and ready[o2]:
+                        _update2(mode, out[o1, x0 : x0 + sw], out[o2, x0 : x0 + sw], part, sw)
+                        continue
+                    for o in (o1, o2):
+                        if o < 0:
+                            continue  # that chord reaches this row only from outside the image
+                        dst = out[o, x0 : x0 + sw]
+                        if ready[o]:
+                            _update(mode, dst, part, sw)
+                        else:
+                            _copy(dst, part, sw)
+                            ready[o] = True
     return out
 
 
@@ -329,5 +366,5 @@ def warm_up() -> None:
         out = np.empty_like(src)
         cval = dtype.type(0)
         for mode in (0, 1):
-            chord_kernel(src, 3, zero, zero, zero, zero, one, 0, 0, mode, cval, False, 2, out)
+            chord_kernel(src, 3, zero, zero, zero, zero, -one, one, 0, 0, mode, cval, False, 2, out)
             box_kernel(src, 3, 3, mode, cval, False, out)
