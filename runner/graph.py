@@ -1,9 +1,10 @@
 """The recipe as a graph of named steps.
 
 Nodes are the recipe's inputs and steps; an edge runs from each name in a step's
-``to:`` to the step. :func:`resolve_graph` checks references, cycles and the
-data kind along every edge, prunes the steps no result needs, and fixes one run
-order: topological generations, each sorted by name.
+``to:`` to the step. :func:`resolve_graph` checks references (input globs must
+stay inside the lot folder), cycles and the data kind along every edge, prunes
+the steps no result needs, and fixes one run order: topological generations,
+each sorted by name.
 """
 
 from __future__ import annotations
@@ -14,6 +15,7 @@ from typing import TYPE_CHECKING
 
 import networkx as nx
 
+from runner.inputs import check_pattern
 from steps import REGISTRY
 
 if TYPE_CHECKING:
@@ -58,6 +60,12 @@ def resolve_graph(
     their own checks) are not reported as missing.
     """
     known = list(recipe.inputs) + list(recipe.steps)
+    # An input is the graph's link to the lot: a glob that would leave the lot folder
+    # is refused here, before anything runs, not when the lot is searched.
+    for name, pattern in recipe.inputs.items():
+        refused = check_pattern(pattern) if isinstance(pattern, str) else None
+        if refused:
+            collector.add(("inputs", name), f"{refused} (got {pattern!r})")
     for name in recipe.steps:
         if name in recipe.inputs:
             collector.add(("steps", name), f"{name!r} names both an input and a step", key=True)

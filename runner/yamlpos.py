@@ -90,9 +90,15 @@ class _StrictLoader(yaml.SafeLoader):
                     problem=f"nesting deeper than {MAX_DEPTH} levels is not allowed",
                     problem_mark=event.start_mark,
                 )
-            return super().compose_node(parent, index)
+            node = super().compose_node(parent, index)
         finally:
             self._depth -= 1
+        # ``!!str 1`` or ``!!int '1'`` resolve to core tags; remember that a tag was
+        # written so that every explicit tag is refused, not only the unknown ones.
+        tag = getattr(event, "tag", None)
+        if tag is not None and node is not None:
+            node.explicit_tag = tag  # type: ignore[attr-defined]
+        return node
 
 
 _StrictLoader.yaml_implicit_resolvers = {}
@@ -156,6 +162,12 @@ def _build(
     # the mapping's own key, not at its first entry.
     value_pos = key_pos if isinstance(node, MappingNode) and path else _pos(node.start_mark)
     out.positions[path] = (key_pos, value_pos)
+    written_tag = getattr(node, "explicit_tag", None)
+    if written_tag is not None:
+        out.problems.append(
+            YamlProblem(_pos(node.start_mark), f"explicit tag {written_tag!r} is not allowed")
+        )
+        return None
     if isinstance(node, ScalarNode):
         try:
             return _scalar(node)
@@ -182,6 +194,10 @@ def _build(
         if not isinstance(key_node, ScalarNode):
             out.problems.append(YamlProblem(kpos, "a key must be plain text, not a list or mapping"))
             continue
+        key_tag = getattr(key_node, "explicit_tag", None)
+        if key_tag is not None:
+            out.problems.append(YamlProblem(kpos, f"explicit tag {key_tag!r} is not allowed"))
+            continue
         try:
             key = _scalar(key_node)
         except _TagRefused as refused:
@@ -206,6 +222,17 @@ def _build(
     return result
 
 
+def _text_position(text: str, offset: int) -> Position:
+    before = text[:offset]
+    return Position(before.count("\n") + 1, offset - (before.rfind("\n") + 1) + 1)
+
+
+def _reader_problem(err: yaml.reader.ReaderError) -> str:
+    character = err.character
+    code = ord(character) if isinstance(character, str) else int(character)
+    return f"control character U+{code:04X} is not allowed in YAML text; remove it"
+
+
 def load_yaml(text: str) -> LoadedYaml:
     """Parse ``text`` strictly; syntax problems are returned, never raised.
 
@@ -213,7 +240,12 @@ def load_yaml(text: str) -> LoadedYaml:
     the position PyYAML reported.
     """
     out = LoadedYaml(data=None)
-    loader = _StrictLoader(text)
+    try:
+        # the reader refuses control characters as soon as it is made
+        loader = _StrictLoader(text)
+    except yaml.reader.ReaderError as err:
+        out.problems.append(YamlProblem(_text_position(text, err.position), _reader_problem(err)))
+        return out
     try:
         node = loader.get_single_node()
     except yaml.MarkedYAMLError as err:
@@ -225,9 +257,16 @@ def load_yaml(text: str) -> LoadedYaml:
             what = "tab characters cannot indent YAML; use spaces"
         elif err.context and err.problem:
             what = f"{err.context}, {err.problem}"
+            start = err.context_mark
+            if mark is not None and start is not None and start.line != mark.line:
+                # an unclosed quote or bracket shows where the text ends: say where it began
+                what += f" (it began at line {start.line + 1}, column {start.column + 1})"
         else:
             what = err.problem or "invalid YAML"
         out.problems.append(YamlProblem(_pos(mark) if mark else Position(1, 1), what))
+        return out
+    except yaml.reader.ReaderError as err:
+        out.problems.append(YamlProblem(_text_position(text, err.position), _reader_problem(err)))
         return out
     except yaml.YAMLError as err:
         out.problems.append(YamlProblem(Position(1, 1), f"invalid YAML: {err}"))
