@@ -45,7 +45,7 @@ OUTLINE_MODES: tuple[str, ...] = ("full", "inner", "outer")
 #: What ``subtract-background`` keeps: bright features on a darker background, or dark on bright.
 FEATURES: tuple[str, ...] = ("bright", "dark")
 
-_LIBRARIES = ("numpy", "scipy")
+_LIBRARIES = ("numpy", "scipy", "numba")
 
 
 class OutlineParams(MorphologyParams):
