@@ -11,7 +11,15 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["PREVIEW_SIDE", "preview_arrays", "to_display"]
+__all__ = [
+    "PREVIEW_SIDE",
+    "label_colours",
+    "labels_display",
+    "mask_display",
+    "outline_overlay",
+    "preview_arrays",
+    "to_display",
+]
 
 #: longest side of a preview, in pixels
 PREVIEW_SIDE = 384
@@ -59,3 +67,58 @@ def preview_arrays(image: np.ndarray, objects: np.ndarray | None, max_side: int 
     rgb[small_edge] = (255, 200, 0)
     out["overlay"] = rgb
     return out
+
+
+def _middle_slice(array: np.ndarray) -> np.ndarray:
+    return array[array.shape[0] // 2] if array.ndim == 3 else array
+
+
+def mask_display(mask: np.ndarray, max_side: int = PREVIEW_SIDE) -> np.ndarray:
+    """A mask as uint8: the fraction of foreground in each shrunk block, 0 (none) to 255 (all)."""
+    mask = _middle_slice(np.asarray(mask, bool))
+    f = _shrink_factor(mask.shape, max_side)
+    h, w = (mask.shape[0] // f) * f, (mask.shape[1] // f) * f
+    fraction = mask[:h, :w].reshape(h // f, f, w // f, f).mean(axis=(1, 3))
+    return (fraction * 255).round().astype(np.uint8)
+
+
+def label_colours(n: int) -> np.ndarray:
+    """``n + 1`` RGB colours: black for label 0, then bright hues spread by the golden angle.
+
+    Neighbouring labels get far-apart hues; the same label always gets the same colour.
+    """
+    hues = (np.arange(n + 1, dtype=np.float64) * 0.6180339887498949) % 1.0
+    value = np.where(np.arange(n + 1) % 2 == 0, 0.95, 0.75)
+    saturation = 0.85
+    h6 = hues * 6
+    sector = np.floor(h6).astype(int) % 6
+    frac = h6 - np.floor(h6)
+    p = value * (1 - saturation)
+    q = value * (1 - saturation * frac)
+    t = value * (1 - saturation * (1 - frac))
+    # HSV to RGB, sector by sector
+    table = np.stack([
+        np.choose(sector, [value, q, p, p, t, value]),
+        np.choose(sector, [t, value, value, q, p, p]),
+        np.choose(sector, [p, p, t, value, value, q]),
+    ], axis=-1)
+    out = (table * 255).round().astype(np.uint8)
+    out[0] = 0
+    return out
+
+
+def labels_display(labels: np.ndarray, max_side: int = PREVIEW_SIDE) -> np.ndarray:
+    """Labels as RGB uint8, each object its own colour (shrunk by taking every f-th pixel)."""
+    labels = _middle_slice(np.asarray(labels))
+    f = _shrink_factor(labels.shape, max_side)
+    small = labels[::f, ::f][: labels.shape[0] // f or 1, : labels.shape[1] // f or 1]
+    small = np.clip(small, 0, None).astype(np.int64)
+    return label_colours(int(small.max(initial=0)))[small]
+
+
+def outline_overlay(image: np.ndarray, objects: np.ndarray, max_side: int = PREVIEW_SIDE) -> np.ndarray:
+    """RGB uint8: ``objects`` (a mask or labels) outlined over ``image`` (see :func:`preview_arrays`)."""
+    objects = np.asarray(objects)
+    if objects.dtype == bool:
+        objects = objects.astype(np.int32)
+    return preview_arrays(image, objects, max_side)["overlay"]
