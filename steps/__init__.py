@@ -11,6 +11,7 @@ from steps._units import AREA_UNITS, LENGTH_UNITS, Area, Length, resolve_to_px
 
 # Importing the family modules registers their step kinds.
 from steps import filters, masks, measure, morphology, threshold  # noqa: E402,F401  isort: skip
+from steps import granulometry, segmentation  # noqa: E402,F401  isort: skip
 
 __all__ = [
     "AREA_UNITS",
