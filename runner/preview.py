@@ -37,7 +37,7 @@ from runner.executor import ImageResult, analyse_sample, resolve_params
 from runner.figures import labels_display, mask_display, outline_overlay, to_display
 from runner.inputs import Sample, find_samples, read_image
 from runner.recipe import Recipe, load_recipe
-from steps import Area, Length, Table
+from steps import REGISTRY, Area, Length, Table
 
 __all__ = [
     "PreviewError",
@@ -396,7 +396,11 @@ def make_preview(
         data = result.kept.get(name)
         source_name = step.to[0]
         source = inputs.get(source_name, result.kept.get(source_name))
-        values = {v: (result.values[(s, v)], result.units[(s, v)]) for (s, v) in result.values if s == name}
+        # in the order the step kind declares them: a cached result keeps no order of its own
+        values = {
+            v: (result.values[(name, v)], result.units[(name, v)])
+            for v in REGISTRY[step.kind].values if (name, v) in result.values
+        }
         side = [f"  {v} = {_short(x)}{'' if u == '-' else ' ' + u}" for v, (x, u) in values.items()]
         # the values first: they are what limits read; then what the data is
         side = (["values:"] + side if side else []) + (_data_lines(data, kind) if data is not None else [kind])

@@ -369,7 +369,7 @@ footer { margin-top: 8mm; padding-top: 2mm; border-top: 1px solid var(--rule); c
 @media print {
   html { background: none; }
   body { max-width: none; padding: 0; font-size: 9pt; }
-  h2 { break-after: avoid; }
+  h2, h3 { break-after: avoid; }
   tr, .verdict, figure, .plot { break-inside: avoid; }
   thead { display: table-header-group; }
   .pics img { width: 30mm; }
