@@ -565,3 +565,4 @@ def main(argv: list[str] | None = None) -> None:
 
 # Commands of the run record (verify, keygen, export, diff, compare) register on `cli`.
 import runner.cli_record  # noqa: E402,F401  isort: skip
+import runner.cli_report  # noqa: E402,F401  isort: skip

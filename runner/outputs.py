@@ -11,6 +11,7 @@ Layout (see DESIGN.md, "Run record")::
     RUN/verdicts.json    every limit and the lot verdict
     RUN/kept/IMAGE/STEP.tif|.csv   results of steps marked keep: true
     RUN/figures/IMAGE.thumbnail.png, IMAGE.overlay.png   for people to look at
+    RUN/report.html      the self-contained customer report (runner.report)
 """
 
 from __future__ import annotations

@@ -22,7 +22,7 @@ __all__ = ["LIBRARIES", "environment", "utc_now", "cpu_info", "environment_diffe
 #: distributions whose versions every run records
 LIBRARIES = (
     "numpy", "scipy", "scikit-image", "tifffile", "pillow", "pydantic", "PyYAML", "networkx",
-    "rfc8785", "numba", "llvmlite", "opencv-python-headless",
+    "rfc8785", "numba", "llvmlite", "matplotlib", "cryptography", "opencv-python-headless",
 )
 
 

@@ -25,6 +25,7 @@ from runner.ledger import (
 from runner.limits import FAIL, Verdicts, evaluate_limits
 from runner.outputs import create_run_folder, write_previews, write_run_files
 from runner.provenance import environment, utc_now
+from runner.report import write_report
 from runner.pool import LocalExecutor, LotExecutor, usable_cores
 from runner.recipe import Recipe, load_recipe
 
@@ -190,6 +191,7 @@ def run_lot(
                 bound=lv.bound_text(), verdict=lv.verdict,
             )
         ledger.append("lot-verdict", verdict=verdicts.lot)
+        files.append(write_report(run_dir))
         write_sha256sums(run_dir, files)
         files.append(SUMS_FILE)
         for name in files:
