@@ -14,6 +14,7 @@ point at the line and column it concerns.
 
 from __future__ import annotations
 
+import bisect
 import math
 import re
 from dataclasses import dataclass, field
@@ -121,8 +122,23 @@ _StrictLoader.add_implicit_resolver(
 )
 
 
-def _pos(mark: Any) -> Position:
-    return Position(mark.line + 1, mark.column + 1)
+class _Lines:
+    """Line and column of a character offset, counting only ``\\n`` as a line break.
+
+    PyYAML also breaks lines at ``\\r``, NEL (U+0085) and U+2028/U+2029; editors,
+    ``grep -n`` and ``sed -n`` do not, so its own line numbers would point at the
+    wrong line of a file that holds one of those characters.
+    """
+
+    def __init__(self, text: str):
+        self.starts = [0] + [m.end() for m in re.finditer("\n", text)]
+
+    def at(self, offset: int) -> Position:
+        line = bisect.bisect_right(self.starts, offset) - 1
+        return Position(line + 1, offset - self.starts[line] + 1)
+
+    def mark(self, mark: Any) -> Position:
+        return self.at(mark.index)
 
 
 def _scalar(node: ScalarNode) -> Any:
@@ -156,16 +172,16 @@ class _TagRefused(Exception):
 
 
 def _build(
-    node: Node, path: tuple[Any, ...], key_pos: Position, out: LoadedYaml
+    node: Node, path: tuple[Any, ...], key_pos: Position, out: LoadedYaml, lines: _Lines
 ) -> Any:
     # A problem with a whole mapping (a missing key, a rule across keys) is shown at
     # the mapping's own key, not at its first entry.
-    value_pos = key_pos if isinstance(node, MappingNode) and path else _pos(node.start_mark)
+    value_pos = key_pos if isinstance(node, MappingNode) and path else lines.mark(node.start_mark)
     out.positions[path] = (key_pos, value_pos)
     written_tag = getattr(node, "explicit_tag", None)
     if written_tag is not None:
         out.problems.append(
-            YamlProblem(_pos(node.start_mark), f"explicit tag {written_tag!r} is not allowed")
+            YamlProblem(lines.mark(node.start_mark), f"explicit tag {written_tag!r} is not allowed")
         )
         return None
     if isinstance(node, ScalarNode):
@@ -173,24 +189,24 @@ def _build(
             return _scalar(node)
         except _TagRefused as refused:
             out.problems.append(
-                YamlProblem(_pos(node.start_mark), f"explicit tag {refused.tag!r} is not allowed")
+                YamlProblem(lines.mark(node.start_mark), f"explicit tag {refused.tag!r} is not allowed")
             )
             return None
     if node.tag not in (_TAG_MAP, _TAG_SEQ):
         out.problems.append(
-            YamlProblem(_pos(node.start_mark), f"explicit tag {node.tag!r} is not allowed")
+            YamlProblem(lines.mark(node.start_mark), f"explicit tag {node.tag!r} is not allowed")
         )
         return None
     if isinstance(node, SequenceNode):
         return [
-            _build(item, path + (i,), _pos(item.start_mark), out)
+            _build(item, path + (i,), lines.mark(item.start_mark), out, lines)
             for i, item in enumerate(node.value)
         ]
     assert isinstance(node, MappingNode)
     result: dict[Any, Any] = {}
     first_seen: dict[Any, Position] = {}
     for key_node, value_node in node.value:
-        kpos = _pos(key_node.start_mark)
+        kpos = lines.mark(key_node.start_mark)
         if not isinstance(key_node, ScalarNode):
             out.problems.append(YamlProblem(kpos, "a key must be plain text, not a list or mapping"))
             continue
@@ -218,13 +234,8 @@ def _build(
             )
             continue
         first_seen[key] = kpos
-        result[key] = _build(value_node, path + (key,), kpos, out)
+        result[key] = _build(value_node, path + (key,), kpos, out, lines)
     return result
-
-
-def _text_position(text: str, offset: int) -> Position:
-    before = text[:offset]
-    return Position(before.count("\n") + 1, offset - (before.rfind("\n") + 1) + 1)
 
 
 def _reader_problem(err: yaml.reader.ReaderError) -> str:
@@ -240,11 +251,12 @@ def load_yaml(text: str) -> LoadedYaml:
     the position PyYAML reported.
     """
     out = LoadedYaml(data=None)
+    lines = _Lines(text)
     try:
         # the reader refuses control characters as soon as it is made
         loader = _StrictLoader(text)
     except yaml.reader.ReaderError as err:
-        out.problems.append(YamlProblem(_text_position(text, err.position), _reader_problem(err)))
+        out.problems.append(YamlProblem(lines.at(err.position), _reader_problem(err)))
         return out
     try:
         node = loader.get_single_node()
@@ -258,15 +270,17 @@ def load_yaml(text: str) -> LoadedYaml:
         elif err.context and err.problem:
             what = f"{err.context}, {err.problem}"
             start = err.context_mark
-            if mark is not None and start is not None and start.line != mark.line:
-                # an unclosed quote or bracket shows where the text ends: say where it began
-                what += f" (it began at line {start.line + 1}, column {start.column + 1})"
+            if mark is not None and start is not None:
+                began, found = lines.mark(start), lines.mark(mark)
+                if began.line != found.line:
+                    # an unclosed quote or bracket shows where the text ends: say where it began
+                    what += f" (it began at line {began.line}, column {began.column})"
         else:
             what = err.problem or "invalid YAML"
-        out.problems.append(YamlProblem(_pos(mark) if mark else Position(1, 1), what))
+        out.problems.append(YamlProblem(lines.mark(mark) if mark else Position(1, 1), what))
         return out
     except yaml.reader.ReaderError as err:
-        out.problems.append(YamlProblem(_text_position(text, err.position), _reader_problem(err)))
+        out.problems.append(YamlProblem(lines.at(err.position), _reader_problem(err)))
         return out
     except yaml.YAMLError as err:
         out.problems.append(YamlProblem(Position(1, 1), f"invalid YAML: {err}"))
@@ -279,5 +293,7 @@ def load_yaml(text: str) -> LoadedYaml:
     if node is None:
         out.problems.append(YamlProblem(Position(1, 1), "the recipe is empty"))
         return out
-    out.data = _build(node, (), Position(1, 1), out)
+    out.data = _build(node, (), Position(1, 1), out, lines)
+    if out.data is None and not out.problems:
+        out.problems.append(YamlProblem(lines.mark(node.start_mark), "the recipe is empty (null)"))
     return out
