@@ -1,11 +1,18 @@
-"""Vectorised kernels behind the ``label`` and ``measure`` step kinds.
+"""Compiled kernels behind the ``label`` and ``measure`` step kinds.
 
 Everything here works in pixel units on plain numpy arrays; ``steps.measure``
 applies the pixel size. Objects are addressed by *compact ids* ``1..N`` (``0`` is
-background), so per-object sums are ``np.bincount`` calls over the foreground
-pixels instead of a Python loop over objects. The maximum Feret diameter, which needs
-each object's convex hull, is vectorised too: hull chains are pruned for all
-objects at once in exact integer arithmetic.
+background). Each public function is one single-threaded pass (or two) over
+the id image, compiled with numba (``cache=True``): per-object sums and counts
+are accumulated pixel by pixel in raster (C) order, and the maximum Feret
+diameter builds each object's convex hull in exact integer arithmetic.
+
+The numpy formulations these kernels replace are kept below as
+``_reference_*`` functions; ``tests/test_measure_kernels_exact.py`` proves the
+two give identical results (the same integers, the same float64 bits).
+Float sums are identical because both add the same float64 terms in the same
+(raster) order: ``np.bincount`` with weights is a plain sequential loop, and
+numba compiles without fast-math, so nothing is reassociated or fused.
 
 The 2x2 configuration code of a window follows the bit weights of
 scikit-image's ``perimeter_crofton`` (so that its look-up table applies
@@ -13,10 +20,17 @@ unchanged): for a window with pixels ``TL TR / BL BR``, the code is
 ``8*TL + 2*TR + 4*BL + 1*BR``. Windows are taken over the array padded with one
 row/column of background on every side, so every window that touches an
 object is counted exactly once.
+
+Compiled signatures are kept few: ids are int64 and masks bool, C-contiguous
+(the public functions cast once, a no-op for what ``steps.measure`` passes).
+:func:`warm_up` compiles or loads them all ahead of the hot path.
 """
 
 from __future__ import annotations
 
+import math
+
+import numba
 import numpy as np
 from scipy import ndimage as ndi
 
@@ -33,12 +47,15 @@ __all__ = [
     "pixel_moments_2d",
     "bounding_boxes",
     "feret_max_2d",
+    "warm_up",
 ]
 
 #: Rank argument of ``scipy.ndimage.generate_binary_structure`` per connectivity.
 _RANK = {4: 1, 8: 2, 6: 1, 18: 2, 26: 3}
 
 _SQRT2 = np.sqrt(2.0)
+
+_jit = numba.njit(cache=True, nogil=True, boundscheck=False)
 
 #: Crofton perimeter contribution (pixel units) of each 2x2 configuration code,
 #: four directions (0, 45, 90, 135 degrees): the table of scikit-image 0.26's
@@ -101,7 +118,524 @@ def label_mask(mask: np.ndarray, connectivity: int) -> tuple[np.ndarray, int]:
     return labels, int(count)
 
 
+# --------------------------------------------------------------------------- public kernels
+
+
+def _as_ids(ids: np.ndarray) -> np.ndarray:
+    return np.ascontiguousarray(ids, dtype=np.int64)
+
+
+def _check(ok: bool, count: int) -> None:
+    if not ok:
+        raise ValueError(f"object ids must lie in 0..{count} (the object count)")
+
+
 def compact_labels(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Renumber a label image to ids 1..N in increasing label order.
+
+    Returns the compact ids (int64, same shape) and the original label of each
+    id (int64, length N). Labels must be non-negative; 0 is background.
+    """
+    if labels.size == 0:
+        return _reference_compact_labels(labels)
+    work = _as_ids(labels)
+    low, top = _min_max(work.reshape(-1))
+    if low < 0:
+        raise ValueError(f"labels must be >= 0 (got {low})")
+    if top > 4 * work.size + 1024:  # sparse label values: no presence table that large
+        return _reference_compact_labels(labels)
+    present = np.flatnonzero(_presence(work.reshape(-1), top))
+    present = present[present > 0].astype(np.int64)
+    if present.size == top:  # already 1..N
+        return labels.astype(np.int64, copy=False), present
+    lookup = np.zeros(top + 1, dtype=np.int64)
+    lookup[present] = np.arange(1, present.size + 1, dtype=np.int64)
+    return _renumber(work.reshape(-1), lookup).reshape(labels.shape), present
+
+
+def window_histogram_2d(mask: np.ndarray) -> np.ndarray:
+    """Counts (int64, length 16) of the 2x2 configuration codes of a bool mask."""
+    if mask.ndim != 2:
+        raise ValueError(f"window_histogram_2d needs a 2-D mask (got {mask.ndim}-D)")
+    hist = np.zeros(16, dtype=np.int64)
+    _quads(np.ascontiguousarray(mask, dtype=np.bool_), hist)
+    return hist
+
+
+def window_histogram_by_label_2d(ids: np.ndarray, count: int) -> np.ndarray:
+    """Per-object counts of 2x2 configuration codes, shape (count + 1, 16), int64.
+
+    Row ``k`` is the histogram of the windows of the indicator image
+    ``ids == k`` (other objects count as background), exactly as if each
+    object were cut out alone. Row 0 is unused.
+    """
+    hist = np.zeros((count + 1, 16), dtype=np.int64)
+    _check(_label_quads(_as_ids(ids), count, hist), count)
+    return hist
+
+
+def boundary_crossings_2d(mask: np.ndarray) -> tuple[int, int]:
+    """Phase-boundary crossings along every row (x) and every column (y) of a mask.
+
+    A crossing is a pair of neighbouring pixels on the line with different
+    values; the image frame is not a boundary.
+    """
+    along_x = int(np.count_nonzero(mask[:, 1:] != mask[:, :-1]))
+    along_y = int(np.count_nonzero(mask[1:, :] != mask[:-1, :]))
+    return along_x, along_y
+
+
+def pixel_moments_2d(ids: np.ndarray, count: int) -> dict[str, np.ndarray]:
+    """Pixel counts, centroids and second central moments per object (pixel units).
+
+    Returns float64 arrays of length ``count`` (object ids 1..count):
+    ``n`` (pixels), ``row``/``col`` (mean row / column index of the pixel
+    centres), ``mu_rr``, ``mu_cc``, ``mu_rc`` (sums of squared / crossed
+    deviations from the centroid). Two passes (mean first, then deviations)
+    keep the central moments free of the cancellation of raw-moment formulas.
+    """
+    out = np.zeros((6, count + 1), dtype=np.float64)
+    _check(_moments(_as_ids(ids), count, out), count)
+    return {
+        name: out[i, 1:] for i, name in enumerate(("n", "row", "col", "mu_rr", "mu_cc", "mu_rc"))
+    }
+
+
+def bounding_boxes(ids: np.ndarray, count: int) -> np.ndarray:
+    """Bounding box per object, int64 ``(count, 2 * ndim)``: starts, then stops (exclusive).
+
+    An id without pixels gets an all-zero box.
+    """
+    if ids.ndim != 2:
+        return _reference_bounding_boxes(ids, count)
+    boxes = np.zeros((count, 4), dtype=np.int64)
+    _check(_boxes(_as_ids(ids), count, boxes), count)
+    return boxes
+
+
+def feret_max_2d(ids: np.ndarray, boxes: np.ndarray) -> np.ndarray:
+    """Maximum Feret diameter per object in pixels (float64, length ``len(boxes)``).
+
+    The largest distance between two points of the contour, at level 0.5, of the
+    object's convex hull image: the pixels whose centres lie in the (closed)
+    convex hull of the edge midpoints of the object's pixels. This is the
+    definition of scikit-image 0.26's ``regionprops(...).feret_diameter_max``.
+    ``boxes`` are the objects' bounding boxes (:func:`bounding_boxes`); an
+    object without pixels gets 0.
+
+    Notes
+    -----
+    Per object, in doubled coordinates ``(2 row, 2 col)`` where all the points
+    involved are integers: the first and last pixel of every row and every
+    column give the edge midpoints that can be hull vertices; the hull's left
+    and right (top and bottom) boundaries are their convex envelopes (Andrew's
+    monotone chain); the hull image's row (column) intervals are the pixel
+    centres between them, rounded inwards by exact integer division; the
+    interval ends moved out by half a pixel are the contour points, and the
+    largest squared distance among the vertices of their envelopes is the
+    squared diameter.
+    """
+    count = len(boxes)
+    out = np.zeros(count, dtype=np.float64)
+    if count == 0:
+        return out
+    status = _feret(_as_ids(ids), np.ascontiguousarray(boxes, dtype=np.int64), out)
+    _check(status != 1, count)
+    if status == 2:
+        raise ValueError("boxes must be the bounding boxes of the objects (bounding_boxes)")
+    return out
+
+
+def warm_up() -> None:
+    """Compile (or load from the on-disk cache) every kernel of this module.
+
+    Call once per process before timing-sensitive work, e.g. in a pool
+    worker's initializer; later calls cost nothing.
+    """
+    ids = np.zeros((2, 2), dtype=np.int64)
+    ids[0, 0] = 1
+    compact_labels(ids)
+    _renumber(ids.reshape(-1), np.arange(2, dtype=np.int64))
+    window_histogram_2d(ids != 0)
+    window_histogram_by_label_2d(ids, 1)
+    pixel_moments_2d(ids, 1)
+    feret_max_2d(ids, bounding_boxes(ids, 1))
+
+
+# --------------------------------------------------------------------------- compiled code
+# Every kernel returns False when it meets an id outside 0..count (or a pixel
+# outside its box), before writing anywhere it should not: the wrappers turn
+# that into a ValueError.
+
+
+@_jit
+def _min_max(flat):
+    low = flat[0]
+    high = flat[0]
+    for i in range(flat.size):
+        v = flat[i]
+        if v < low:
+            low = v
+        if v > high:
+            high = v
+    return low, high
+
+
+@_jit
+def _presence(flat, top):
+    seen = np.zeros(top + 1, dtype=np.bool_)
+    for i in range(flat.size):
+        seen[flat[i]] = True
+    return seen
+
+
+@_jit
+def _renumber(flat, lookup):
+    out = np.empty_like(flat)
+    for i in range(flat.size):
+        out[i] = lookup[flat[i]]
+    return out
+
+
+@_jit
+def _quads(mask, hist):
+    height, width = mask.shape
+    for i in range(height + 1):
+        tr = 0
+        br = 0
+        for j in range(width + 1):
+            # the window slides right: its left column is the last one's right column
+            tl = tr
+            bl = br
+            if j < width:
+                tr = 1 if i > 0 and mask[i - 1, j] else 0
+                br = 1 if i < height and mask[i, j] else 0
+            else:
+                tr = 0
+                br = 0
+            hist[8 * tl + 2 * tr + 4 * bl + br] += 1
+
+
+@_jit
+def _label_quads(ids, count, hist):
+    height, width = ids.shape
+    for i in range(height + 1):
+        tr = 0
+        br = 0
+        for j in range(width + 1):
+            tl = tr
+            bl = br
+            if j < width:
+                tr = ids[i - 1, j] if i > 0 else 0
+                br = ids[i, j] if i < height else 0
+                # every pixel is a window's BR once, and enters TL, TR, BL later
+                if br < 0 or br > count:
+                    return False
+            else:
+                tr = 0
+                br = 0
+            if tl == tr and tl == bl and tl == br:
+                if tl != 0:
+                    hist[tl, 15] += 1
+                continue
+            # each distinct object in the window is credited once, at its first
+            # position in the order TL, TR, BL, BR, with a bit wherever it occurs
+            if tl != 0:
+                hist[tl, 8 + 2 * (tr == tl) + 4 * (bl == tl) + (br == tl)] += 1
+            if tr != 0 and tr != tl:
+                hist[tr, 2 + 4 * (bl == tr) + (br == tr)] += 1
+            if bl != 0 and bl != tl and bl != tr:
+                hist[bl, 4 + (br == bl)] += 1
+            if br != 0 and br != tl and br != tr and br != bl:
+                hist[br, 1] += 1
+    return True
+
+
+@_jit
+def _moments(ids, count, out):
+    # out rows: n, row mean, col mean, mu_rr, mu_cc, mu_rc; float64 terms are
+    # added in raster order, as np.bincount(weights=...) adds them
+    height, width = ids.shape
+    n = np.zeros(count + 1, dtype=np.int64)
+    sum_r = out[1]
+    sum_c = out[2]
+    for r in range(height):
+        fr = float(r)
+        for c in range(width):
+            k = ids[r, c]
+            if k != 0:
+                if k < 0 or k > count:
+                    return False
+                n[k] += 1
+                sum_r[k] += fr
+                sum_c[k] += float(c)
+    for k in range(count + 1):
+        out[0, k] = float(n[k])
+        safe = out[0, k] if n[k] > 0 else 1.0
+        out[1, k] = sum_r[k] / safe
+        out[2, k] = sum_c[k] / safe
+    mean_r = out[1]
+    mean_c = out[2]
+    mu_rr = out[3]
+    mu_cc = out[4]
+    mu_rc = out[5]
+    for r in range(height):
+        fr = float(r)
+        for c in range(width):
+            k = ids[r, c]
+            if k != 0:
+                d_r = fr - mean_r[k]
+                d_c = float(c) - mean_c[k]
+                mu_rr[k] += d_r * d_r
+                mu_cc[k] += d_c * d_c
+                mu_rc[k] += d_r * d_c
+    return True
+
+
+@_jit
+def _boxes(ids, count, boxes):
+    height, width = ids.shape
+    lo_r = np.full(count + 1, height, dtype=np.int64)
+    lo_c = np.full(count + 1, width, dtype=np.int64)
+    hi_r = np.full(count + 1, -1, dtype=np.int64)
+    hi_c = np.full(count + 1, -1, dtype=np.int64)
+    for r in range(height):
+        for c in range(width):
+            k = ids[r, c]
+            if k != 0:
+                if k < 0 or k > count:
+                    return False
+                if r < lo_r[k]:
+                    lo_r[k] = r
+                if c < lo_c[k]:
+                    lo_c[k] = c
+                hi_r[k] = r  # raster order: the last row seen is the largest
+                if c > hi_c[k]:
+                    hi_c[k] = c
+    for k in range(1, count + 1):
+        if hi_r[k] >= 0:
+            boxes[k - 1, 0] = lo_r[k]
+            boxes[k - 1, 1] = lo_c[k]
+            boxes[k - 1, 2] = hi_r[k] + 1
+            boxes[k - 1, 3] = hi_c[k] + 1
+    return True
+
+
+_NONE = np.int64(-(2**62))  # an empty level / line: below every coordinate
+
+
+@numba.njit(cache=True, nogil=True, boundscheck=False, inline="always")
+def _widen(low, high, t, lo_v, hi_v):
+    if low[t] == _NONE or lo_v < low[t]:
+        low[t] = lo_v
+    if hi_v > high[t]:
+        high[t] = hi_v
+
+
+@_jit
+def _convex_chain(ys, xs, n, side, env_y, env_x):
+    """Vertices of the convex envelope of points with strictly increasing ``ys``.
+
+    ``side=+1``: the envelope from the low-``x`` side (points on or behind a
+    segment joining their neighbours dropped), ``side=-1`` from the high side.
+    Returns the vertex count; the vertices are in ``env_y``, ``env_x``.
+    """
+    m = 0
+    for i in range(n):
+        y = ys[i]
+        x = xs[i]
+        while m >= 2:
+            oy = env_y[m - 2]
+            ox = env_x[m - 2]
+            cross = (env_y[m - 1] - oy) * (x - ox) - (env_x[m - 1] - ox) * (y - oy)
+            if side * cross <= 0:
+                m -= 1
+            else:
+                break
+        env_y[m] = y
+        env_x[m] = x
+        m += 1
+    return m
+
+
+@_jit
+def _level_envelopes(low, high, n_levels, ys, xs, left_y, left_x, right_y, right_x):
+    """Both envelopes of per-level extremes ``low[t]``/``high[t]`` at level ``y = t - 1``.
+
+    Levels without points hold ``_NONE`` in ``low``. Returns the vertex counts.
+    """
+    n = 0
+    for t in range(n_levels):
+        if low[t] != _NONE:
+            ys[n] = t - 1
+            xs[n] = low[t]
+            n += 1
+    n_left = _convex_chain(ys, xs, n, 1, left_y, left_x)
+    n = 0
+    for t in range(n_levels):
+        if low[t] != _NONE:
+            ys[n] = t - 1
+            xs[n] = high[t]
+            n += 1
+    n_right = _convex_chain(ys, xs, n, -1, right_y, right_x)
+    return n_left, n_right
+
+
+@_jit
+def _chain_at(env_y, env_x, m, p, y, side):
+    """Pixel index bound of a chain at even level ``y`` (doubled coordinates).
+
+    ``p`` is a vertex index with ``env_y[p] < y`` (advanced and returned).
+    The chain's ``x`` there is interpolated exactly and halved, rounded up
+    (``side=+1``) or down (``side=-1``).
+    """
+    while env_y[p + 1] < y:
+        p += 1
+    rise = env_y[p + 1] - env_y[p]
+    num = env_x[p] * rise + (env_x[p + 1] - env_x[p]) * (y - env_y[p])
+    den = 2 * rise
+    if side > 0:
+        return -((-num) // den), p
+    return num // den, p
+
+
+@_jit
+def _hull_lines(first, last, base, n_lines, low, high, ys, xs, ly, lx, ry, rx, lo_out, hi_out):
+    """Interval of hull pixel centres on each line of one object's box.
+
+    ``first[base + l]``/``last[base + l]`` are the first and last pixel (box
+    relative) of the object on line ``l`` (-1: none). Levels are doubled
+    coordinates along the lines, box relative: line ``l`` at ``2 l``, its edge
+    midpoints across at ``2 l -+ 1``; values are doubled coordinates along
+    the line.
+    """
+    n_levels = 2 * n_lines + 1
+    for t in range(n_levels):
+        low[t] = _NONE
+        high[t] = _NONE
+    for line in range(n_lines):
+        a = first[base + line]
+        if a < 0:
+            continue
+        b = last[base + line]
+        t = 2 * line + 1  # level 2 l, stored at index level + 1
+        _widen(low, high, t - 1, 2 * a, 2 * b)
+        _widen(low, high, t, 2 * a - 1, 2 * b + 1)
+        _widen(low, high, t + 1, 2 * a, 2 * b)
+    n_left, n_right = _level_envelopes(low, high, n_levels, ys, xs, ly, lx, ry, rx)
+    p = 0
+    q = 0
+    for line in range(n_lines):
+        lo_out[line], p = _chain_at(ly, lx, n_left, p, 2 * line, 1)
+        hi_out[line], q = _chain_at(ry, rx, n_right, q, 2 * line, -1)
+
+
+@_jit
+def _max_sq(ys, xs, n):
+    best = 0
+    for i in range(n):
+        yi = ys[i]
+        xi = xs[i]
+        for j in range(i + 1, n):
+            dy = ys[j] - yi
+            dx = xs[j] - xi
+            d = dy * dy + dx * dx
+            if d > best:
+                best = d
+    return best
+
+
+@_jit
+def _feret(ids, boxes, out):
+    height, width = ids.shape
+    count = boxes.shape[0]
+    # one slot per (object, row of its box) and per (object, column of its box)
+    row_base = np.zeros(count + 2, dtype=np.int64)
+    col_base = np.zeros(count + 2, dtype=np.int64)
+    for k in range(count):
+        row_base[k + 2] = row_base[k + 1] + max(boxes[k, 2] - boxes[k, 0], 0)
+        col_base[k + 2] = col_base[k + 1] + max(boxes[k, 3] - boxes[k, 1], 0)
+    row_first = np.full(row_base[count + 1], -1, dtype=np.int64)
+    row_last = np.full(row_base[count + 1], -1, dtype=np.int64)
+    col_first = np.full(col_base[count + 1], -1, dtype=np.int64)
+    col_last = np.full(col_base[count + 1], -1, dtype=np.int64)
+    for r in range(height):
+        for c in range(width):
+            k = ids[r, c]
+            if k != 0:
+                if k < 0 or k > count:
+                    return 1
+                r0 = boxes[k - 1, 0]
+                c0 = boxes[k - 1, 1]
+                if r < r0 or r >= boxes[k - 1, 2] or c < c0 or c >= boxes[k - 1, 3]:
+                    return 2
+                s = row_base[k] + r - r0
+                if row_first[s] < 0:  # raster order: first seen is leftmost, last rightmost
+                    row_first[s] = c - c0
+                row_last[s] = c - c0
+                s = col_base[k] + c - c0
+                if col_first[s] < 0:
+                    col_first[s] = r - r0
+                col_last[s] = r - r0
+
+    size = 2 * max(height, width) + 3
+    low = np.empty(size, dtype=np.int64)
+    high = np.empty(size, dtype=np.int64)
+    ys = np.empty(2 * size, dtype=np.int64)  # also holds both chains at the end
+    xs = np.empty(2 * size, dtype=np.int64)
+    ly = np.empty(size, dtype=np.int64)
+    lx = np.empty(size, dtype=np.int64)
+    ry = np.empty(size, dtype=np.int64)
+    rx = np.empty(size, dtype=np.int64)
+    c_lo = np.empty(height, dtype=np.int64)
+    c_hi = np.empty(height, dtype=np.int64)
+    r_lo = np.empty(width, dtype=np.int64)
+    r_hi = np.empty(width, dtype=np.int64)
+    for k in range(count):
+        n_rows = boxes[k, 2] - boxes[k, 0]
+        n_cols = boxes[k, 3] - boxes[k, 1]
+        if n_rows <= 0 or n_cols <= 0:
+            continue
+        # a tight box has pixels on its first and last row and column
+        if (row_first[row_base[k + 1]] < 0 or row_first[row_base[k + 1] + n_rows - 1] < 0
+                or col_first[col_base[k + 1]] < 0 or col_first[col_base[k + 1] + n_cols - 1] < 0):
+            return 2
+        # the hull image, as column intervals per row and row intervals per column
+        # (the same hull, built from the row extents and from the column extents)
+        _hull_lines(row_first, row_last, row_base[k + 1], n_rows,
+                    low, high, ys, xs, ly, lx, ry, rx, c_lo, c_hi)
+        _hull_lines(col_first, col_last, col_base[k + 1], n_cols,
+                    low, high, ys, xs, ly, lx, ry, rx, r_lo, r_hi)
+        # its contour points at level 0.5: interval ends moved out by half a
+        # pixel, at rows 2 r (doubled) and at columns 2 c; bounded, level by
+        # level along the rows, by their extreme columns
+        n_levels = 2 * n_rows + 1
+        for t in range(n_levels):
+            low[t] = _NONE
+            high[t] = _NONE
+        for r in range(n_rows):
+            t = 2 * r + 1
+            low[t] = 2 * c_lo[r] - 1
+            high[t] = 2 * c_hi[r] + 1
+        for c in range(n_cols):
+            _widen(low, high, 2 * r_lo[c], 2 * c, 2 * c)
+            _widen(low, high, 2 * r_hi[c] + 2, 2 * c, 2 * c)
+        n_left, n_right = _level_envelopes(low, high, n_levels, ys, xs, ly, lx, ry, rx)
+        # the farthest pair of points is a pair of hull vertices
+        ys[:n_left] = ly[:n_left]
+        xs[:n_left] = lx[:n_left]
+        ys[n_left : n_left + n_right] = ry[:n_right]
+        xs[n_left : n_left + n_right] = rx[:n_right]
+        out[k] = math.sqrt(float(_max_sq(ys, xs, n_left + n_right))) / 2.0
+    return 0
+
+
+# --------------------------------------------------------------------------- reference
+# The numpy formulations the compiled kernels replace, kept as the reference the
+# exactness tests compare with. Not used by the step kinds.
+
+
+def _reference_compact_labels(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Renumber a label image to ids 1..N in increasing label order.
 
     Returns the compact ids (int64, same shape) and the original label of each
@@ -131,13 +665,13 @@ def _windows_2d(array: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, 
     )
 
 
-def window_histogram_2d(mask: np.ndarray) -> np.ndarray:
+def _reference_window_histogram_2d(mask: np.ndarray) -> np.ndarray:
     """Counts (int64, length 16) of the 2x2 configuration codes of a bool mask."""
     tl, tr, bl, br = (w.astype(np.int64) for w in _windows_2d(mask))
     return np.bincount(8 * tl + 2 * tr + 4 * bl + br, minlength=16)
 
 
-def window_histogram_by_label_2d(ids: np.ndarray, count: int) -> np.ndarray:
+def _reference_window_histogram_by_label_2d(ids: np.ndarray, count: int) -> np.ndarray:
     """Per-object counts of 2x2 configuration codes, shape (count + 1, 16), int64.
 
     Row ``k`` is the histogram of the windows of the indicator image
@@ -171,18 +705,7 @@ def window_histogram_by_label_2d(ids: np.ndarray, count: int) -> np.ndarray:
     return np.bincount(keys, minlength=16 * (count + 1)).reshape(count + 1, 16)
 
 
-def boundary_crossings_2d(mask: np.ndarray) -> tuple[int, int]:
-    """Phase-boundary crossings along every row (x) and every column (y) of a mask.
-
-    A crossing is a pair of neighbouring pixels on the line with different
-    values; the image frame is not a boundary.
-    """
-    along_x = int(np.count_nonzero(mask[:, 1:] != mask[:, :-1]))
-    along_y = int(np.count_nonzero(mask[1:, :] != mask[:-1, :]))
-    return along_x, along_y
-
-
-def pixel_moments_2d(ids: np.ndarray, count: int) -> dict[str, np.ndarray]:
+def _reference_pixel_moments_2d(ids: np.ndarray, count: int) -> dict[str, np.ndarray]:
     """Pixel counts, centroids and second central moments per object (pixel units).
 
     Returns float64 arrays of length ``count`` (object ids 1..count):
@@ -384,7 +907,7 @@ def _max_sq_distance_ragged(py: np.ndarray, px: np.ndarray, starts: np.ndarray) 
     return out
 
 
-def feret_max_2d(ids: np.ndarray, boxes: np.ndarray) -> np.ndarray:
+def _reference_feret_max_2d(ids: np.ndarray, boxes: np.ndarray) -> np.ndarray:
     """Maximum Feret diameter per object in pixels (float64, length ``len(boxes)``).
 
     The largest distance between two points of the contour, at level 0.5, of the
@@ -439,7 +962,7 @@ def feret_max_2d(ids: np.ndarray, boxes: np.ndarray) -> np.ndarray:
     return np.sqrt(sq.astype(np.float64)) / 2.0
 
 
-def bounding_boxes(ids: np.ndarray, count: int) -> np.ndarray:
+def _reference_bounding_boxes(ids: np.ndarray, count: int) -> np.ndarray:
     """Bounding box per object, int64 ``(count, 2 * ndim)``: starts, then stops (exclusive)."""
     boxes = np.zeros((count, 2 * ids.ndim), dtype=np.int64)
     for k, box in enumerate(ndi.find_objects(ids, max_label=count)):
