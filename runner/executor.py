@@ -24,6 +24,7 @@ from runner.hashing import input_key, library_versions, step_key
 from runner.inputs import LoadedImage, Sample, read_image
 from runner.recipe import Recipe
 from steps import REGISTRY, Area, Length, Output, StepParams, Table, resolve_to_px
+from steps._units import Volume, resolve_for_spacing
 
 __all__ = ["StepRecord", "ImageResult", "resolve_params", "analyse_sample"]
 
@@ -77,44 +78,94 @@ class ImageResult:
 
 
 def resolve_params(params: StepParams, spacing: tuple[float, ...]) -> StepParams:
-    """``params`` with every length and area converted to pixels.
+    """``params`` with every length, area and volume converted to pixels.
 
-    Lengths use the pixel size along the last axis; the pixel size must be the
-    same along every axis of a 2-D image (square pixels).
+    ``spacing`` is the pixel size per array axis in um, ``(dy, dx)`` or
+    ``(dz, dy, dx)``. With square pixels (cubic voxels) a length becomes plain
+    pixels. Otherwise a physical length becomes a length in px that carries
+    its size along every axis (``Length.axes``, see :mod:`steps._units`):
+    footprints turn it into an ellipse or ellipsoid, and a step that applies
+    one size along every axis refuses it. Areas use ``dy * dx``, volumes
+    ``dz * dy * dx``. The cache key holds both the resolved parameters (whose
+    text shows the per-axis sizes) and the spacing.
     """
     update: dict[str, Any] = {}
     for name in type(params).model_fields:
         value = getattr(params, name)
-        if isinstance(value, (Length, Area)):
-            if len(set(spacing[-2:])) != 1:
-                raise ValueError(
-                    f"pixels are not square ({spacing[-2]:g} x {spacing[-1]:g} um); lengths "
-                    "in physical units need square pixels"
-                )
-            update[name] = resolve_to_px(value, spacing[-1])
+        if isinstance(value, (Length, Area, Volume)):
+            update[name] = resolve_for_spacing(value, tuple(spacing))
     return params.model_copy(update=update) if update else params
 
 
+def _recipe_spacing(recipe: Recipe, spatial: int, shown: str) -> tuple[float, ...]:
+    """The recipe's pixel size per array axis for data with ``spatial`` axes."""
+    if recipe.voxel_size is not None:
+        sizes = [resolve_to_px(v, 1.0).value for v in recipe.voxel_size]  # um, x first
+        if len(sizes) == 3 and spatial == 2:
+            raise InputError(
+                f"{shown}: the recipe gives a voxel size for volumes (x, y, z), but this is a "
+                "2-D image"
+            )
+        if len(sizes) == 2 and spatial == 3:
+            raise InputError(
+                f"{shown}: the recipe gives a pixel size for 2-D images (x, y), but this is a "
+                "3-D volume; write voxel_size: [x, y, z]"
+            )
+        return tuple(reversed(sizes))
+    assert recipe.pixel_size is not None
+    size_um = resolve_to_px(recipe.pixel_size, 1.0).value  # um per pixel
+    return (size_um,) * spatial
+
+
+def _axes_text(sizes: tuple[float, ...]) -> str:
+    names = ("z", "y", "x")[-len(sizes):]
+    return ", ".join(f"{n} {s:.6g}" for n, s in zip(names, sizes, strict=True)) + " um"
+
+
 def _spacing(recipe: Recipe, images: list[LoadedImage], result: ImageResult) -> tuple[float, ...]:
+    """The pixel size per array axis of one sample, by the recipe's calibration rule.
+
+    ``pixel_size: from-image`` takes the image's calibration (none is an error).
+    Otherwise the recipe's size is used; when the image carries a calibration
+    that differs from it by more than :data:`CALIBRATION_TOLERANCE` (relative)
+    on some axis, the sample is incomplete under ``calibration:
+    image-must-agree`` and noted under ``calibration: recipe-wins``. An image
+    calibrated in x and y only (a volume without z spacing) is compared on
+    those axes.
+    """
     first = images[0]
     spatial = first.data.ndim - (1 if first.is_color else 0)
     calibration = first.calibration
-    if recipe.pixel_size is None:
+    if recipe.size_from_image:
         if calibration.pixel_size_um is None:
             raise InputError(
                 f"{first.path}: the recipe says pixel_size: from-image, but this image carries "
                 f"no calibration ({calibration.source})"
             )
         return tuple(calibration.pixel_size_um)
-    size_um = resolve_to_px(recipe.pixel_size, 1.0).value  # um per pixel
-    if calibration.pixel_size_um is not None:
-        own = calibration.pixel_size_um[-1]
-        if abs(own - size_um) > CALIBRATION_TOLERANCE * size_um:
-            result.notes.append(
-                f"{first.path}: the image says {own:.6g} um per pixel ({calibration.source}); "
-                f"the recipe's pixel_size {recipe.pixel_size} was used"
+    spacing = _recipe_spacing(recipe, spatial, first.path)
+    for image in images:
+        own = image.calibration.pixel_size_um
+        if own is None:
+            continue
+        own = tuple(own)
+        theirs = spacing[-len(own):]
+        if len(own) > len(spacing) or all(
+            abs(a - b) <= CALIBRATION_TOLERANCE * b for a, b in zip(own, theirs, strict=True)
+        ):
+            continue
+        said = (
+            f"{image.path}: the image says {_axes_text(own)} per pixel "
+            f"({image.calibration.source}), the recipe {recipe.size_text}"
+        )
+        if recipe.calibration == "recipe-wins":
+            result.notes.append(f"{said}; the recipe's size was used (calibration: recipe-wins)")
+        else:
+            raise InputError(
+                f"{said}: they differ by more than {CALIBRATION_TOLERANCE:.0%}; fix the recipe "
+                "or the image, or write calibration: recipe-wins (or pixel_size: from-image)"
             )
-    return (size_um,) * spatial
+    return spacing
 
 
 def _targets(recipe: Recipe) -> list[str]:

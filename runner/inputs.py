@@ -1,5 +1,13 @@
 """Finding a lot's images and reading them, read-only, with their calibration.
 
+Volumes: a multi-page TIFF (one slice a page) or a TIFF holding a 3-D array is
+read as a volume ``(z, y, x)``. Its voxel size comes, most trusted first, from
+OME-XML ``PhysicalSizeX/Y/Z`` (with units, default um), from the ImageJ
+description (``spacing`` along z, ``unit``) with the resolution tags for x and
+y, or not at all (a volume without a z spacing is uncalibrated); the recipe's
+``pixel_size`` / ``voxel_size`` and its ``calibration`` rule decide what is
+used (see ``runner.executor``).
+
 A lot is a folder. Each recipe input is a glob inside it. With one input every
 matching file is one image of the lot. With several inputs, files are paired by
 what their wildcards matched (``*_bright.tif`` and ``*_dark.tif`` pair
@@ -312,6 +320,29 @@ def _tiff_calibration(tif: Any, ndim_spatial: int) -> Calibration:
     return Calibration(sizes, source)
 
 
+def _series_data(tif: Any, shown: str) -> np.ndarray:
+    """The image data of a TIFF: its one series, or the volume its single-page series stack to.
+
+    A multi-page TIFF without shape metadata (pages written one by one) comes
+    back from tifffile as one series per page; reading only the first would
+    silently turn a volume into its first slice. Pages of one 2-D shape and
+    dtype are stacked as slices (z, y, x) in file order; series that differ
+    are refused.
+    """
+    series = list(tif.series)
+    if len(series) == 1:
+        return np.asarray(series[0].asarray())
+    shapes = {(tuple(s.shape), str(s.dtype)) for s in series}
+    if len(shapes) != 1 or len(series[0].shape) != 2 or any(len(s.pages) != 1 for s in series):
+        listed = ", ".join(f"{tuple(s.shape)} {s.dtype}" for s in series[:4])
+        raise InputError(
+            f"{shown}: {len(series)} image series of different shapes or types ({listed}"
+            f"{', ...' if len(series) > 4 else ''}); lotproof reads one image or one volume "
+            "per file"
+        )
+    return np.stack([np.asarray(s.asarray()) for s in series])
+
+
 def _decode_tiff(raw: bytes, shown: str) -> tuple[np.ndarray, bool, Calibration]:
     import tifffile
 
@@ -335,13 +366,15 @@ def _decode_tiff(raw: bytes, shown: str) -> tuple[np.ndarray, bool, Calibration]
                                 f"{offset + count}, the file has {len(raw)})"
                             )
                 series = tif.series[0]
-                _check_pixels(tuple(series.shape), series.dtype.itemsize, shown)
+                _check_pixels(
+                    (len(tif.series),) + tuple(series.shape), series.dtype.itemsize, shown
+                )
                 page_total = sum(len(s.pages) for s in tif.series)
                 if page_total < len(pages) and len(tif.series) == 1:
                     raise InputError(
                         f"{shown}: {len(pages)} pages but only {page_total} in the image series"
                     )
-                data = series.asarray()
+                data = _series_data(tif, shown)
                 if handler.messages:
                     raise InputError(f"{shown}: damaged TIFF ({handler.messages[0]})")
                 photometric = getattr(pages[0].photometric, "name", str(pages[0].photometric))

@@ -27,6 +27,7 @@ from steps import REGISTRY, Length, StepParams
 __all__ = [
     "FORMAT",
     "OVER_CHOICES",
+    "CALIBRATION_RULES",
     "NAME_PATTERN",
     "RecipeModel",
     "LimitModel",
@@ -44,6 +45,10 @@ OVER_CHOICES = ("each", "lot-mean", "lot-max", "lot-min")
 #: names of inputs, steps and limits: no dots (limits write STEP.VALUE)
 NAME_PATTERN = r"^[A-Za-z][A-Za-z0-9_-]{0,63}$"
 SLUG_PATTERN = r"^[a-z0-9][a-z0-9-]{0,63}$"
+#: what happens when an image's own calibration and the recipe's pixel/voxel size disagree
+#: (by more than 1 % relative on some axis): image-must-agree makes that image incomplete,
+#: recipe-wins uses the recipe's size and notes the disagreement
+CALIBRATION_RULES = ("image-must-agree", "recipe-wins")
 #: keys of a step that are not parameters of its kind
 STEP_KEYS = ("apply", "to", "keep")
 
@@ -90,9 +95,25 @@ class RecipeModel(_Strict):
     )
     revision: int = Field(ge=1, description="the method's revision, bumped on every change")
     summary: str = Field("", description="one line on what the method measures")
-    pixel_size: Length | Literal["from-image"] = Field(
-        description="physical size of one pixel (e.g. 0.65 um), or from-image to read it from "
-        "each image's calibration (an image without one is then an error)"
+    pixel_size: Length | Literal["from-image"] | None = Field(
+        None,
+        description="physical size of one pixel, the same along every axis (e.g. 0.65 um), or "
+        "from-image to read it from each image's calibration (an image without one is then an "
+        "error). Give this or voxel_size",
+    )
+    voxel_size: list[Length] | None = Field(
+        None,
+        min_length=2,
+        max_length=3,
+        description="physical size of one pixel per axis, written in the order x, y (2-D "
+        "images) or x, y, z (3-D volumes), e.g. [0.8 um, 0.8 um, 1.2 um]; give this or "
+        "pixel_size",
+    )
+    calibration: Literal[CALIBRATION_RULES] = Field(  # type: ignore[valid-type]
+        "image-must-agree",
+        description="when an image carries its own pixel size and it differs from the recipe's "
+        "by more than 1 % on some axis: image-must-agree makes that image incomplete, "
+        "recipe-wins uses the recipe's size (and records the difference)",
     )
     lossy_input: Literal["refuse", "allow"] = Field(
         "refuse", description="JPEG is lossy and refused for measurement unless this is allow"
@@ -102,6 +123,17 @@ class RecipeModel(_Strict):
     )
     steps: dict[Name, dict[str, Any]] = Field(description="the named steps", min_length=1)
     limits: dict[Name, LimitModel] = Field(default_factory=dict, description="acceptance limits")
+
+    @model_validator(mode="after")
+    def _one_size(self) -> RecipeModel:
+        if self.pixel_size is None and self.voxel_size is None:
+            raise ValueError(
+                "missing required key 'pixel_size' (e.g. pixel_size: 0.65 um, or from-image; "
+                "or voxel_size: [x, y, z] per axis)"
+            )
+        if self.pixel_size is not None and self.voxel_size is not None:
+            raise ValueError("give either pixel_size or voxel_size, not both")
+        return self
 
 
 @dataclass(frozen=True)
@@ -136,17 +168,34 @@ class Recipe:
     name: str
     revision: int
     summary: str
-    pixel_size: Length | None  # None: from-image
+    pixel_size: Length | None  # None: from-image, or voxel_size is given
     lossy_input: str
     inputs: dict[str, str]
     steps: dict[str, StepDef]
     limits: dict[str, LimitDef]
+    #: pixel size per axis as written, x first: (x, y) or (x, y, z); None: see pixel_size
+    voxel_size: tuple[Length, ...] | None = None
+    #: one of CALIBRATION_RULES
+    calibration: str = "image-must-agree"
     #: steps in run order (topological generations, names as tie-break), pruned
     order: tuple[str, ...] = ()
     #: steps defined but not needed by any limit, measure or keep
     unused: tuple[str, ...] = ()
     #: data kind of every input and step
     kinds: dict[str, str] = field(default_factory=dict)
+
+    @property
+    def size_from_image(self) -> bool:
+        """The pixel size is read from each image (``pixel_size: from-image``)."""
+        return self.pixel_size is None and self.voxel_size is None
+
+    @property
+    def size_text(self) -> str:
+        """The pixel or voxel size as the recipe gives it: ``0.65 um``, ``[0.8 um, 0.8 um, 1.2 um]``
+        (x, y, z order) or ``from-image``."""
+        if self.voxel_size is not None:
+            return "[" + ", ".join(str(v) for v in self.voxel_size) + "]"
+        return "from-image" if self.pixel_size is None else str(self.pixel_size)
 
     @property
     def label(self) -> str:
@@ -354,10 +403,16 @@ def parse_recipe(raw: bytes, file: str = "<recipe>") -> Recipe:
         inputs=dict(model.inputs),
         steps=steps,
         limits={},
+        voxel_size=None if model.voxel_size is None else tuple(model.voxel_size),
+        calibration=model.calibration,
     )
     if recipe.pixel_size is not None and recipe.pixel_size.unit == "px":
         collector.add(("pixel_size",), "the pixel size must be a physical length (e.g. 0.65 um), "
                       "or from-image")
+    for axis, size in enumerate(recipe.voxel_size or ()):
+        if size.unit == "px":
+            collector.add(("voxel_size", axis), "a voxel size must be a physical length "
+                          "(e.g. 0.8 um)")
     limits: dict[str, LimitDef] = {}
     for name, limit in model.limits.items():
         checked_limit = _check_limit(name, limit, recipe, collector)

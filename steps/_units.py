@@ -1,16 +1,35 @@
-"""Lengths and areas with units, as step parameters.
+"""Lengths, areas and volumes with units, as step parameters.
 
 A recipe writes every length with its unit (``3 px``, ``1.5 um``, ``200 nm``,
-``0.1 mm``) and every area likewise (``20 um2``, ``4 px2``). A bare number where a
-length belongs is refused: a silent pixel/micrometre mix-up is the classic wrong
-certificate.
+``0.1 mm``), every area likewise (``20 um2``, ``4 px2``) and every volume
+(``500 um3``, ``27 px3``). A bare number where a length belongs is refused: a
+silent pixel/micrometre mix-up is the classic wrong certificate.
 
 Step functions never see physical units. Before a step runs, the runner turns
-every :class:`Length` and :class:`Area` of its parameters into pixels with
-:func:`resolve_to_px`, using the pixel size of the image being analysed. The
-pixel value is kept as a real number (no rounding here); each footprint states
-how it turns a real number of pixels into a digital shape (see
-``steps/footprints.py``).
+every :class:`Length`, :class:`Area` and :class:`Volume` of its parameters into
+pixels with :func:`resolve_for_spacing`, using the pixel size per axis of the
+image being analysed. The pixel value is kept as a real number (no rounding
+here beyond 12 significant digits); each footprint states how it turns a real
+number of pixels into a digital shape (see ``steps/footprints.py``).
+
+Non-square pixels and anisotropic voxels
+----------------------------------------
+A physical length spans a different number of pixels along each axis when the
+pixel size differs per axis. Such a length resolves to a :class:`Length` in
+``px`` that also carries its size along every axis (:attr:`Length.axes`, in
+array order ``(z, y, x)`` or ``(y, x)``); its ``value`` is the size along the
+last axis (x). Steps that honour anisotropy (footprints) read
+:meth:`Length.px_axes`; reading :attr:`Length.px` of such a length raises
+``ValueError``, so a step that applies one size along every axis can never use
+it silently. A length written in ``px`` means that many pixels (voxels) along
+every axis, whatever their physical size. On square pixels (cubic voxels)
+nothing of this shows: the result is the same plain ``Length(value, "px")`` as
+with :func:`resolve_to_px`.
+
+An area resolves with the pixel area ``dy * dx`` and a volume with the voxel
+volume ``dz * dy * dx``, exact for any pixel shape. An area in physical units
+has no meaning for a 3-D volume, nor a volume for a 2-D image: both are
+refused (``px2`` / ``px3`` pass unchanged).
 """
 
 from __future__ import annotations
@@ -28,10 +47,14 @@ __all__ = [
     "LENGTH_UNITS",
     "AREA_UNITS",
     "Length",
+    "VOLUME_UNITS",
     "Area",
+    "Volume",
     "parse_length",
     "parse_area",
+    "parse_volume",
     "resolve_to_px",
+    "resolve_for_spacing",
 ]
 
 #: Length unit spellings -> (canonical name, micrometres per unit); ``px`` has no
@@ -63,6 +86,22 @@ AREA_UNITS: dict[str, tuple[str, float | None]] = {
     "px²": ("px2", None),
 }
 
+#: Volume unit spellings -> (canonical name, cubic micrometres per unit).
+VOLUME_UNITS: dict[str, tuple[str, float | None]] = {
+    "nm3": ("nm3", 1e-9),
+    "nm³": ("nm3", 1e-9),
+    "um3": ("um3", 1.0),
+    "µm3": ("um3", 1.0),
+    "µm³": ("um3", 1.0),
+    "μm3": ("um3", 1.0),
+    "μm³": ("um3", 1.0),
+    "um³": ("um3", 1.0),
+    "mm3": ("mm3", 1e9),
+    "mm³": ("mm3", 1e9),
+    "px3": ("px3", None),
+    "px³": ("px3", None),
+}
+
 _QUANTITY = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*([^\s\d].*?)\s*$")
 
 
@@ -80,8 +119,8 @@ class _Quantity:
 
     @property
     def px(self) -> float:
-        """The value in pixels (or square pixels); only after :func:`resolve_to_px`."""
-        if self.unit not in ("px", "px2"):
+        """The value in pixels (px, px2 or px3); only after :func:`resolve_to_px`."""
+        if self.unit not in ("px", "px2", "px3"):
             raise ValueError(f"{self} has not been resolved to pixels")
         return self.value
 
@@ -89,7 +128,7 @@ class _Quantity:
     def __get_pydantic_core_schema__(
         cls, source: Any, handler: GetCoreSchemaHandler
     ) -> core_schema.CoreSchema:
-        parse = parse_length if cls is Length else parse_area
+        parse = cls._parse
 
         def validate(raw: Any) -> Any:
             if isinstance(raw, cls):
@@ -104,9 +143,9 @@ class _Quantity:
     def __get_pydantic_json_schema__(
         cls, schema: core_schema.CoreSchema, handler: GetJsonSchemaHandler
     ) -> JsonSchemaValue:
-        table = LENGTH_UNITS if cls is Length else AREA_UNITS
+        table = cls._table()
         units = "|".join(re.escape(u) for u in sorted(table, key=len, reverse=True))
-        example = "1.5 um" if cls is Length else "20 um2"
+        example = cls._example
         return {
             "type": "string",
             "pattern": rf"^\s*[+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?\s*({units})\s*$",
@@ -114,16 +153,92 @@ class _Quantity:
         }
 
 
+@dataclass(frozen=True, slots=True)
 class Length(_Quantity):
-    """A positive length with a unit: ``nm``, ``um`` (``µm``, ``micron``), ``mm`` or ``px``."""
+    """A positive length with a unit: ``nm``, ``um`` (``µm``, ``micron``), ``mm`` or ``px``.
 
-    __slots__ = ()
+    ``axes`` is set only on a length resolved for non-square pixels or
+    anisotropic voxels: its size in pixels along every array axis, ``(z, y, x)``
+    or ``(y, x)``; ``value`` is then the size along the last axis (x).
+    """
+
+    axes: tuple[float, ...] | None = None
+
+    _example = "1.5 um"
+
+    def __str__(self) -> str:
+        if self.axes is None:
+            return f"{_format_number(self.value)} {self.unit}"
+        names = ("z", "y", "x")[-len(self.axes):]
+        sizes = ", ".join(_format_number(a) for a in self.axes)
+        return f"[{sizes}] {self.unit} ({', '.join(names)})"
+
+    @property
+    def px(self) -> float:
+        """The length in pixels, the same along every axis; only after resolution.
+
+        Raises ``ValueError`` when the length spans a different number of pixels
+        along different axes (non-square pixels): read :meth:`px_axes` instead.
+        """
+        if self.axes is not None:
+            raise ValueError(
+                f"{self} differs per axis (the pixels are not square or the voxels not "
+                "cubic), and this parameter is applied with one size along every axis; "
+                "give it in px, or use square pixels"
+            )
+        return _Quantity.px.fget(self)  # type: ignore[attr-defined,no-any-return]
+
+    def px_axes(self, ndim: int) -> tuple[float, ...]:
+        """The length in pixels along each of ``ndim`` axes (array order); only after resolution."""
+        if self.unit != "px":
+            raise ValueError(f"{self} has not been resolved to pixels")
+        if self.axes is None:
+            return (self.value,) * ndim
+        if len(self.axes) != ndim:
+            raise ValueError(
+                f"{self} was resolved for {len(self.axes)}-D data, not {ndim}-D"
+            )
+        return self.axes
+
+    @classmethod
+    def _table(cls) -> dict[str, tuple[str, float | None]]:
+        return LENGTH_UNITS
+
+    @classmethod
+    def _parse(cls, raw: Any) -> Length:
+        return parse_length(raw)
 
 
 class Area(_Quantity):
     """A positive area with a unit: ``nm2``, ``um2`` (``µm²``), ``mm2`` or ``px2``."""
 
     __slots__ = ()
+
+    _example = "20 um2"
+
+    @classmethod
+    def _table(cls) -> dict[str, tuple[str, float | None]]:
+        return AREA_UNITS
+
+    @classmethod
+    def _parse(cls, raw: Any) -> Area:
+        return parse_area(raw)
+
+
+class Volume(_Quantity):
+    """A positive volume with a unit: ``nm3``, ``um3`` (``µm³``), ``mm3`` or ``px3`` (voxels)."""
+
+    __slots__ = ()
+
+    _example = "500 um3"
+
+    @classmethod
+    def _table(cls) -> dict[str, tuple[str, float | None]]:
+        return VOLUME_UNITS
+
+    @classmethod
+    def _parse(cls, raw: Any) -> Volume:
+        return parse_volume(raw)
 
 
 def _parse(raw: Any, table: dict[str, tuple[str, float | None]], cls: type, hint: str) -> Any:
@@ -152,18 +267,19 @@ def _parse(raw: Any, table: dict[str, tuple[str, float | None]], cls: type, hint
         )
     number, unit = match.groups()
     if unit not in table:
-        other = AREA_UNITS if table is LENGTH_UNITS else LENGTH_UNITS
-        if unit in other:
-            raise PydanticCustomError(
-                "quantity_wrong_dimension",
-                "{got} is {other_kind}, but a {kind} belongs here; write {hint}",
-                {
-                    "got": repr(raw),
-                    "kind": kind,
-                    "other_kind": "an area" if other is AREA_UNITS else "a length",
-                    "hint": hint,
-                },
-            )
+        others = [
+            (other, name)
+            for other, name in ((LENGTH_UNITS, "a length"), (AREA_UNITS, "an area"),
+                                (VOLUME_UNITS, "a volume"))
+            if other is not table
+        ]
+        for other, other_kind in others:
+            if unit in other:
+                raise PydanticCustomError(
+                    "quantity_wrong_dimension",
+                    "{got} is {other_kind}, but a {kind} belongs here; write {hint}",
+                    {"got": repr(raw), "kind": kind, "other_kind": other_kind, "hint": hint},
+                )
         raise PydanticCustomError(
             "quantity_unit",
             "unknown {kind} unit {unit} in {got}; use one of {units}",
@@ -187,11 +303,19 @@ def parse_area(raw: Any) -> Area:
     return _parse(raw, AREA_UNITS, Area, "9 px2 or 20 um2")
 
 
-def resolve_to_px(quantity: Length | Area, pixel_size_um: float) -> Length | Area:
-    """Convert a length or area to pixels for an image with square pixels of ``pixel_size_um``.
+def parse_volume(raw: Any) -> Volume:
+    """Read a volume such as ``'500 um3'`` or ``'27 px3'``; raise a pydantic error otherwise."""
+    return _parse(raw, VOLUME_UNITS, Volume, "27 px3 or 500 um3")
+
+
+def resolve_to_px(
+    quantity: Length | Area | Volume, pixel_size_um: float
+) -> Length | Area | Volume:
+    """Convert a length, area or volume to pixels for square pixels of ``pixel_size_um``.
 
     A length in ``um`` becomes ``value / pixel_size_um`` pixels, an area in ``um2``
-    becomes ``value / pixel_size_um**2`` square pixels; values already in pixels are
+    becomes ``value / pixel_size_um**2`` square pixels, a volume in ``um3``
+    ``value / pixel_size_um**3`` voxels; values already in pixels are
     returned unchanged. The result is rounded to 12 significant digits, so that
     decimal inputs such as ``0.6 um`` at ``0.2 um`` per pixel give exactly 3 px
     rather than 2.9999999999999996 px (which would change a digital disk); no other
@@ -203,6 +327,12 @@ def resolve_to_px(quantity: Length | Area, pixel_size_um: float) -> Length | Are
         per_unit = LENGTH_UNITS[quantity.unit][1]
         assert per_unit is not None
         return Length(_significant(quantity.value * per_unit / pixel_size_um), "px")
+    if isinstance(quantity, Volume):
+        if quantity.unit == "px3":
+            return quantity
+        per_volume = VOLUME_UNITS[quantity.unit][1]
+        assert per_volume is not None
+        return Volume(_significant(quantity.value * per_volume / pixel_size_um**3), "px3")
     if quantity.unit == "px2":
         return quantity
     per_unit = AREA_UNITS[quantity.unit][1]
@@ -212,3 +342,64 @@ def resolve_to_px(quantity: Length | Area, pixel_size_um: float) -> Length | Are
 
 def _significant(value: float) -> float:
     return float(f"{value:.12g}")
+
+
+def resolve_for_spacing(
+    quantity: Length | Area | Volume, spacing: tuple[float, ...]
+) -> Length | Area | Volume:
+    """Convert a length, area or volume to pixels for data with ``spacing`` um per pixel per axis.
+
+    Parameters
+    ----------
+    quantity : Length, Area or Volume
+        As written in the recipe.
+    spacing : tuple of float
+        Pixel size per array axis in um: ``(dy, dx)`` or ``(dz, dy, dx)``.
+
+    Returns
+    -------
+    Length, Area or Volume in px, px2 or px3
+        With square pixels (all sizes equal) exactly what :func:`resolve_to_px`
+        gives with that size. Otherwise a length gets :attr:`Length.axes`, the
+        value along each axis ``value / spacing[axis]`` (each rounded to 12
+        significant digits), with ``value`` the one along x; an area is divided
+        by ``dy * dx``, a volume by ``dz * dy * dx``.
+
+    Raises
+    ------
+    ValueError
+        An area in physical units for 3-D data, a volume in physical units for
+        2-D data, or a spacing that is not 2 or 3 positive numbers.
+    """
+    if len(spacing) not in (2, 3) or not all(math.isfinite(s) and s > 0 for s in spacing):
+        raise ValueError(f"a pixel size per axis needs 2 or 3 sizes > 0 um (got {spacing!r})")
+    ndim = len(spacing)
+    square = len(set(spacing)) == 1
+    if isinstance(quantity, Volume):
+        if quantity.unit == "px3":
+            return quantity
+        if ndim != 3:
+            raise ValueError(f"{quantity} is a volume, but the data is a 2-D image")
+        per_unit = VOLUME_UNITS[quantity.unit][1]
+        assert per_unit is not None
+        voxel = spacing[0] ** 3 if square else spacing[0] * spacing[1] * spacing[2]
+        return Volume(_significant(quantity.value * per_unit / voxel), "px3")
+    if isinstance(quantity, Area):
+        if quantity.unit == "px2":
+            return quantity
+        if ndim != 2:
+            raise ValueError(
+                f"{quantity} is an area, but the data is a 3-D volume; give a volume "
+                "(e.g. 500 um3) or square pixels (px2)"
+            )
+        if square:
+            return resolve_to_px(quantity, spacing[-1])
+        per_unit = AREA_UNITS[quantity.unit][1]
+        assert per_unit is not None
+        return Area(_significant(quantity.value * per_unit / (spacing[0] * spacing[1])), "px2")
+    if quantity.unit == "px" or square:
+        return resolve_to_px(quantity, spacing[-1])
+    axes = tuple(resolve_to_px(quantity, s).value for s in spacing)
+    if len(set(axes)) == 1:
+        return Length(axes[-1], "px")
+    return Length(axes[-1], "px", axes)

@@ -17,6 +17,24 @@ each shape states below how a real number becomes a digital shape:
   at unit steps i = -(n-1)/2 .. (n-1)/2 along the direction, each put on the
   pixel ``(round(-i sin a), round(i cos a))`` with rounding half to even, which
   keeps the line symmetric.
+
+Non-square pixels and anisotropic voxels: a length given in physical units
+spans a different number of pixels along each axis (the runner resolves it to
+a per-axis size, ``Length.axes``, see ``steps/_units.py``), and the footprint
+is the physical shape sampled on the pixel grid:
+
+* ``ball`` of radius R (um) on voxels (dz, dy, dx): the ellipsoid
+  {(z/rz)² + (y/ry)² + (x/rx)² <= 1} with r per axis = R / spacing per axis;
+  ``disk`` likewise the ellipse {(y/ry)² + (x/rx)² <= 1}; ``diamond``
+  {|y|/ry + |x|/rx <= 1}. The comparison is exact (rational arithmetic on the
+  float radii wherever floating point could err).
+* ``cube`` and ``square``: each side by the rounding rule per axis (a box);
+  ``rectangle``: width with the x size, height with the y size.
+* ``line``: the segment of physical length L at physical angle a becomes, in
+  pixel units, the segment of length sqrt((L cos a / dx)² + (L sin a / dy)²)
+  at angle atan2(L sin a / dy, L cos a / dx), drawn as above.
+
+With square pixels these are exactly the shapes above, bit for bit.
 """
 
 from __future__ import annotations
@@ -46,6 +64,7 @@ __all__ = [
     "rectangle",
     "cube",
     "line",
+    "ellipsoid",
     "build_footprint",
 ]
 
@@ -242,6 +261,65 @@ def ball(radius: float, *, limit: Sequence[int] | None = None) -> np.ndarray:
     return (z**2 + y**2 + x**2) <= m
 
 
+def ellipsoid(radii: Sequence[float], *, limit: Sequence[int] | None = None) -> np.ndarray:
+    """The digital ellipse or ellipsoid {p integer : sum_k (p_k / r_k)² <= 1}.
+
+    Parameters
+    ----------
+    radii : sequence of float
+        Semi-axis r_k in pixels along each array axis ((y, x) or (z, y, x)),
+        each > 0, not rounded.
+    limit : sequence of int, optional
+        Largest offset to keep per axis; see :func:`disk`.
+
+    Returns
+    -------
+    ndarray of bool, shape (2 h_k + 1, ...)
+        h_k = floor(r_k), or less when clipped.
+
+    Notes
+    -----
+    With all radii equal to r this is exactly :func:`disk` / :func:`ball` of r.
+    The sum is formed in float64; offsets whose sum lies within 1e-9 of 1 are
+    decided again in exact rational arithmetic from the float radii, so the
+    result does not depend on rounding.
+    """
+    for r in radii:
+        _check_positive(r, "a radius")
+    halves = [math.floor(r) for r in radii]
+    grids = _grid(_clip(halves, limit))
+    total = np.zeros(np.broadcast_shapes(*(g.shape for g in grids)), dtype=np.float64)
+    for g, r in zip(grids, radii):
+        total = total + (g.astype(np.float64) / r) ** 2
+    inside = total <= 1.0
+    close = np.abs(total - 1.0) <= 1e-9
+    if close.any():
+        exact_radii = [Fraction(r) for r in radii]
+        offsets = np.argwhere(close)
+        for index in offsets:
+            point = [int(i) - int(g.size // 2) for i, g in zip(index, grids)]
+            value = sum(Fraction(p * p) / (r * r) for p, r in zip(point, exact_radii))
+            inside[tuple(index)] = value <= 1
+    return inside
+
+
+def _diamond_axes(radii: Sequence[float], limit: Sequence[int] | None) -> np.ndarray:
+    """{(y, x) integer : |y| / ry + |x| / rx <= 1}, exact in rational arithmetic."""
+    for r in radii:
+        _check_positive(r, "a radius")
+    ry, rx = (Fraction(r) for r in radii)
+    hy, hx = _clip([math.floor(r) for r in radii], limit)
+    out = np.zeros((2 * hy + 1, 2 * hx + 1), dtype=bool)
+    for y in range(-hy, hy + 1):
+        # |x| <= rx (1 - |y| / ry): the widest x of this row, exactly
+        reach = rx * (1 - Fraction(abs(y)) / ry)
+        if reach < 0:
+            continue
+        w = min(math.floor(reach), hx)
+        out[y + hy, hx - w : hx + w + 1] = True
+    return out
+
+
 def diamond(radius: float, *, limit: Sequence[int] | None = None) -> np.ndarray:
     """The digital diamond {(y, x) integer : |x| + |y| <= r}.
 
@@ -423,22 +501,36 @@ def build_footprint(
     if limit is not None and len(limit) != ndim:
         raise ValueError(f"shape {tuple(shape)} does not have {ndim} axes")
 
-    def px(field: str) -> float:
+    def sizes(field: str) -> tuple[float, ...]:
         value = getattr(params, field)
         if value is None:  # the model validator makes this unreachable
             raise ValueError(f"footprint {name!r} needs {field}")
-        return value.px
+        return tuple(value.px_axes(ndim))
 
-    if name == "disk":
-        return disk(px("radius"), limit=limit)
-    if name == "diamond":
-        return diamond(px("radius"), limit=limit)
-    if name == "ball":
-        return ball(px("radius"), limit=limit)
-    if name == "square":
-        return square(px("size"), limit=limit)
-    if name == "cube":
-        return cube(px("size"), limit=limit)
+    def isotropic(field: str) -> float | None:
+        per_axis = sizes(field)
+        return per_axis[0] if len(set(per_axis)) == 1 else None
+
+    if name in ("disk", "ball", "diamond"):
+        r = isotropic("radius")
+        if r is None:
+            if name == "diamond":
+                return _diamond_axes(sizes("radius"), limit)
+            return ellipsoid(sizes("radius"), limit=limit)
+        return {"disk": disk, "ball": ball, "diamond": diamond}[name](r, limit=limit)
+    if name in ("square", "cube"):
+        s = isotropic("size")
+        if s is None:
+            return _box(sizes("size"), limit)
+        return square(s, limit=limit) if name == "square" else cube(s, limit=limit)
     if name == "rectangle":
-        return rectangle(px("width"), px("height"), limit=limit)
-    return line(px("length"), params.angle, limit=limit)
+        width, height = sizes("width")[-1], sizes("height")[-2]
+        return rectangle(width, height, limit=limit)
+    length = sizes("length")
+    if len(set(length)) == 1:
+        return line(length[0], params.angle, limit=limit)
+    # the physical segment, expressed in pixel units along y and x
+    s_, c_ = _direction(params.angle)
+    along_y, along_x = length[0] * s_, length[1] * c_
+    angle_px = math.degrees(math.atan2(along_y, along_x))
+    return line(math.hypot(along_y, along_x), angle_px, limit=limit)

@@ -11,11 +11,11 @@ from __future__ import annotations
 from typing import Literal
 
 import numpy as np
-from pydantic import Field
+from pydantic import Field, model_validator
 from scipy import ndimage
 
 from steps._registry import StepParams, step
-from steps._units import Area
+from steps._units import Area, Volume
 
 __all__ = [
     "CONNECTIVITIES",
@@ -201,17 +201,38 @@ def fill_holes(
 
 
 class RemoveSmallParams(StepParams):
-    """Parameters of ``remove-small``."""
+    """Parameters of ``remove-small``: a minimum area (2-D) or volume (3-D)."""
 
-    min_area: Area = Field(
+    min_area: Area | None = Field(
+        None,
         description=(
-            "objects with an area strictly smaller than this are removed; an object of "
-            "exactly this area stays (e.g. '20 um2' or '9 px2'; in 3D counted in voxels)"
+            "2-D: objects with an area strictly smaller than this are removed; an object of "
+            "exactly this area stays (e.g. '20 um2' or '9 px2'). On a volume only px2 is "
+            "accepted, counting voxels; prefer min_volume there"
+        ),
+    )
+    min_volume: Volume | None = Field(
+        None,
+        description=(
+            "3-D: objects with a volume strictly smaller than this are removed; an object of "
+            "exactly this volume stays (e.g. '500 um3' or '27 px3'). Give min_area or "
+            "min_volume"
         ),
     )
     connectivity: Literal[_ALL_CONNECTIVITIES] | None = Field(
         None, description=_CONNECTIVITY_DESCRIPTION
     )
+
+    @model_validator(mode="after")
+    def _one_minimum(self) -> RemoveSmallParams:
+        if self.min_area is None and self.min_volume is None:
+            raise ValueError(
+                "remove-small needs min_area (2-D, e.g. min_area: 20 um2) or min_volume "
+                "(3-D, e.g. min_volume: 500 um3)"
+            )
+        if self.min_area is not None and self.min_volume is not None:
+            raise ValueError("give either min_area or min_volume, not both")
+        return self
 
 
 @step(
@@ -226,32 +247,41 @@ class RemoveSmallParams(StepParams):
 def remove_small(
     params: RemoveSmallParams, mask: np.ndarray, *, spacing: tuple[float, ...]
 ) -> np.ndarray:
-    """Remove objects smaller than a minimum area.
+    """Remove objects smaller than a minimum area (2-D) or volume (3-D).
 
     Objects are the connected regions of the mask under ``connectivity``. An
-    object of ``n`` pixels is removed when ``n < min_area`` (in square pixels,
-    not rounded) and kept otherwise, so an object of exactly ``min_area``
-    pixels stays.
+    object of ``n`` pixels (voxels) is removed when ``n < minimum`` (in square
+    pixels or voxels, not rounded) and kept otherwise, so an object of exactly
+    the minimum stays.
 
     Parameters
     ----------
     params : RemoveSmallParams
-        ``min_area`` (square pixels after resolution; in 3D the same number
-        counts voxels), ``connectivity`` (default 8 in 2D, 26 in 3D).
+        ``min_area`` (square pixels after resolution, with the pixel area
+        ``dy * dx``) for a 2-D mask, or ``min_volume`` (voxels after
+        resolution, with the voxel volume ``dz * dy * dx``) for a 3-D mask;
+        ``connectivity`` (default 8 in 2D, 26 in 3D). On a 3-D mask a
+        ``min_area`` in px2 counts voxels (kept for recipes written before
+        ``min_volume``); the runner refuses a physical area for a volume.
     mask : ndarray of bool, 2D or 3D
         The mask.
     spacing : tuple of float
-        Pixel size per axis in um (unused: the area arrives in pixels).
+        Pixel size per axis in um (unused: the minimum arrives in pixels).
 
     Returns
     -------
     ndarray of bool
         The mask without its small objects.
 
+    Raises
+    ------
+    ValueError
+        ``min_volume`` for a 2-D mask.
+
     Notes
     -----
     Object sizes are pixel counts, ``np.bincount`` of the labels of
-    ``scipy.ndimage.label``: an area opening of the mask (Vincent 1992).
+    ``scipy.ndimage.label``: an area (volume) opening of the mask (Vincent 1992).
 
     References
     ----------
@@ -260,9 +290,18 @@ def remove_small(
     197-208.
     """
     _check_mask(mask, "remove-small")
+    if params.min_volume is not None:
+        if mask.ndim != 3:
+            raise ValueError(
+                f"min_volume is for 3-D masks; this mask is {mask.ndim}-D: use min_area"
+            )
+        minimum = params.min_volume.px
+    else:
+        assert params.min_area is not None
+        minimum = params.min_area.px
     labels, _ = _label(mask, params.connectivity)
     sizes = np.bincount(labels.reshape(-1))
-    stays = sizes >= params.min_area.px
+    stays = sizes >= minimum
     stays[0] = False
     return stays[labels]
 

@@ -1,0 +1,204 @@
+"""Deterministic generator of the lattice demo lot LC-2612: synthetic CT volumes of lattice coupons.
+
+Each volume is a small X-ray CT reconstruction of an additively made lattice
+coupon: struts of a cubic lattice (cylinders along x, y and z through the
+lattice lines) with gas voids (ellipsoids) inside the struts. The script draws
+the material and the voids in physical coordinates, samples them on the voxel
+grid, blurs and adds noise, and writes multi-page uint8 TIFFs with an ImageJ
+description (``spacing`` along z, ``unit=micron``) and resolution tags for x
+and y. The ground truth (void volume fraction of the material, the voids'
+equivalent sphere diameters) is computed from the drawn masks, before blur
+and noise, and written to ``lot-truth.json``.
+
+Usage: ``python demo_run/lattice/generate.py [OUT_DIR]`` (default: beside this
+file). The output is byte-identical on every run (fixed seeds, no dates).
+
+Nothing here uses lotproof's steps: the truth is independent of the method.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import sys
+from pathlib import Path
+
+import numpy as np
+import tifffile
+from scipy import ndimage
+
+SHAPE = (96, 96, 96)  # z, y, x voxels
+VOXEL_UM = (3.0, 2.5, 2.5)  # dz, dy, dx
+CELL_UM = 80.0  # lattice period
+STRUT_RADIUS_UM = 15.0
+AIR, METAL = 40.0, 190.0
+BLUR_SIGMA_VOXELS = 0.6
+NOISE = 2.0
+SEED = 2612
+
+#: per coupon: number of voids and their radius range (um); coupon 04 has more, larger voids
+COUPONS = {
+    "LC-2612-01": (14, (5.0, 8.0)),
+    "LC-2612-02": (10, (5.0, 8.5)),
+    "LC-2612-03": (16, (5.0, 8.0)),
+    "LC-2612-04": (30, (6.0, 13.0)),
+    "LC-2612-05": (12, (5.0, 7.5)),
+}
+
+
+def _axes_um() -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    z = np.arange(SHAPE[0]) * VOXEL_UM[0]
+    y = np.arange(SHAPE[1]) * VOXEL_UM[1]
+    x = np.arange(SHAPE[2]) * VOXEL_UM[2]
+    return z[:, None, None], y[None, :, None], x[None, None, :]
+
+
+def _lines(extent: float) -> np.ndarray:
+    """Lattice line positions along one axis (um), every CELL_UM, starting half a cell in."""
+    return np.arange(CELL_UM / 2, extent, CELL_UM)
+
+
+def _struts() -> np.ndarray:
+    z, y, x = _axes_um()
+    extent = [n * d for n, d in zip(SHAPE, VOXEL_UM)]
+    lz, ly, lx = (_lines(e) for e in extent)
+    r2 = STRUT_RADIUS_UM**2
+    solid = np.zeros(SHAPE, dtype=bool)
+    # distance to the nearest lattice line, per pair of axes
+    dz = np.min(np.abs(z - lz.reshape(-1, 1, 1, 1)), axis=0)
+    dy = np.min(np.abs(y - ly.reshape(-1, 1, 1, 1)), axis=0)
+    dx = np.min(np.abs(x - lx.reshape(-1, 1, 1, 1)), axis=0)
+    solid |= (dy**2 + dz**2) <= r2  # struts along x
+    solid |= (dx**2 + dz**2) <= r2  # struts along y
+    solid |= (dx**2 + dy**2) <= r2  # struts along z
+    return solid
+
+
+def _voids(rng: np.random.Generator, count: int, radii: tuple[float, float]) -> list[dict]:
+    """Ellipsoidal voids, each wholly inside one strut and apart from the others."""
+    extent = [n * d for n, d in zip(SHAPE, VOXEL_UM)]
+    # only struts wholly inside the volume carry voids: a void in a strut cut by
+    # the frame would be open to the outside
+    lines = [
+        np.array([p for p in _lines(e) if STRUT_RADIUS_UM + 6 < p < e - STRUT_RADIUS_UM - 6])
+        for e in extent
+    ]
+    voids: list[dict] = []
+    margin = 2 * max(VOXEL_UM)
+    while len(voids) < count:
+        axis = int(rng.integers(3))  # strut direction (0 z, 1 y, 2 x)
+        centre = [0.0, 0.0, 0.0]
+        a = float(rng.uniform(*radii))
+        semi = [a * float(rng.uniform(0.8, 1.0)) for _ in range(3)]
+        semi[axis] = a * float(rng.uniform(1.0, 1.3))  # gas voids stretch along the strut
+        room = STRUT_RADIUS_UM - max(s for i, s in enumerate(semi) if i != axis) - 5.0
+        if room < 0:
+            continue
+        for i in range(3):
+            if i == axis:
+                centre[i] = float(rng.uniform(semi[i] + margin, extent[i] - semi[i] - margin))
+            else:
+                centre[i] = float(rng.choice(lines[i])) + float(rng.uniform(-room, room)) / 2
+        # keep apart from other voids and from nodes (where struts cross)
+        if any(
+            np.linalg.norm(np.subtract(centre, v["centre_um"])) < a + max(v["semi_axes_um"]) + 6
+            for v in voids
+        ):
+            continue
+        along = centre[axis]
+        if np.min(np.abs(along - _lines(extent[axis]))) < STRUT_RADIUS_UM + semi[axis] + 2:
+            continue
+        voids.append({"centre_um": centre, "semi_axes_um": semi})
+    return voids
+
+
+def _draw_voids(voids: list[dict]) -> tuple[np.ndarray, list[int]]:
+    z, y, x = _axes_um()
+    mask = np.zeros(SHAPE, dtype=bool)
+    sizes = []
+    for v in voids:
+        (cz, cy, cx), (az, ay, ax) = v["centre_um"], v["semi_axes_um"]
+        one = ((z - cz) / az) ** 2 + ((y - cy) / ay) ** 2 + ((x - cx) / ax) ** 2 <= 1.0
+        sizes.append(int(np.count_nonzero(one)))
+        mask |= one
+    return mask, sizes
+
+
+def make_coupon(name: str, index: int) -> tuple[np.ndarray, dict]:
+    """The volume (uint8, z y x) and its ground truth."""
+    count, radii = COUPONS[name]
+    rng = np.random.default_rng([SEED, index])
+    solid = _struts()
+    voids = _voids(rng, count, radii)
+    void_mask, void_voxels = _draw_voids(voids)
+    assert not (void_mask & ~solid).any(), "a void leaves its strut"
+    material = solid & ~void_mask
+    field = np.where(material, METAL, AIR)
+    field = ndimage.gaussian_filter(field, BLUR_SIGMA_VOXELS, mode="nearest", truncate=4.0)
+    field = field + rng.normal(0.0, NOISE, SHAPE)
+    volume = np.clip(np.rint(field), 0, 255).astype(np.uint8)
+    voxel = float(np.prod(VOXEL_UM))
+    esd_drawn = [2.0 * float(np.prod(v["semi_axes_um"])) ** (1 / 3) for v in voids]
+    esd_voxels = [float(np.cbrt(6.0 * n * voxel / np.pi)) for n in void_voxels]
+    truth = {
+        "file": f"{name}.tif",
+        "void_count": len(voids),
+        "void_voxels": int(np.count_nonzero(void_mask)),
+        "solid_voxels": int(np.count_nonzero(solid)),
+        "void_fraction_of_material": float(np.count_nonzero(void_mask) / np.count_nonzero(solid)),
+        "void_volume_fraction_of_field": float(np.count_nonzero(void_mask) / void_mask.size),
+        "void_esd_um_drawn": esd_drawn,
+        "void_esd_um_voxels": esd_voxels,
+        "largest_void_esd_um": max(esd_voxels),
+        "voids": voids,
+    }
+    return volume, truth
+
+
+def write_lot(out: Path) -> dict:
+    lot = out / "lot"
+    lot.mkdir(parents=True, exist_ok=True)
+    images = []
+    for index, name in enumerate(COUPONS, start=1):
+        volume, truth = make_coupon(name, index)
+        path = lot / f"{name}.tif"
+        tifffile.imwrite(
+            path,
+            volume,
+            imagej=True,
+            resolution=(1.0 / VOXEL_UM[2], 1.0 / VOXEL_UM[1]),
+            metadata={"spacing": VOXEL_UM[0], "unit": "micron", "axes": "ZYX"},
+            compression="zlib",
+            predictor=True,
+            software="lotproof demo generator (synthetic lattice coupon)",
+            datetime=False,
+        )
+        truth["sha256"] = hashlib.sha256(path.read_bytes()).hexdigest()
+        images.append(truth)
+    summary = {
+        "lot": "LC-2612",
+        "synthetic": True,
+        "shape_zyx": list(SHAPE),
+        "voxel_size_um_zyx": list(VOXEL_UM),
+        "cell_um": CELL_UM,
+        "strut_radius_um": STRUT_RADIUS_UM,
+        "gray_air_metal": [AIR, METAL],
+        "blur_sigma_voxels": BLUR_SIGMA_VOXELS,
+        "noise_sigma": NOISE,
+        "seed": SEED,
+        "images": images,
+    }
+    (out / "lot-truth.json").write_text(json.dumps(summary, indent=2, sort_keys=True) + "\n")
+    return summary
+
+
+if __name__ == "__main__":
+    target = Path(sys.argv[1]) if len(sys.argv) > 1 else Path(__file__).resolve().parent
+    result = write_lot(target)
+    for entry in result["images"]:
+        print(
+            entry["file"],
+            f"voids {entry['void_count']}",
+            f"fraction {entry['void_fraction_of_material']:.5f}",
+            f"largest ESD {entry['largest_void_esd_um']:.1f} um",
+        )
