@@ -54,9 +54,9 @@ class SplitParams(StepParams):
         Literal[CONNECTIVITIES] | None,  # type: ignore[valid-type]
         Field(
             description=(
-                "neighbours that join pixels into one object, for the maxima, the "
-                "clusters and the flooding: 4 or 8 in 2D, 6, 18 or 26 in 3D; empty "
-                "(null) means 8 in 2D, 26 in 3D"
+                "neighbours that join pixels into one object, for the clusters and the "
+                "flooding (maxima are always found over all 8 / 26 neighbours): 4 or 8 in "
+                "2D, 6, 18 or 26 in 3D; empty (null) means 8 in 2D, 26 in 3D"
             )
         ),
     ] = None
