@@ -111,7 +111,7 @@ def check(recipe: Path, as_json: bool) -> None:
         return
     console = _out()
     console.print(Text(f"{checked.path}: {checked.label} — {checked.summary}", style="bold"))
-    pixel = str(checked.pixel_size) if checked.pixel_size else "from each image's calibration"
+    pixel = "from each image's calibration" if checked.size_from_image else checked.size_text
     console.print(f"pixel size: {pixel}")
     graph = RichTable(title="step graph, in run order", title_justify="left")
     for column in ("#", "step", "apply", "to", "gives", "parameters"):
@@ -459,7 +459,11 @@ def steps_command(kind: str | None, as_json: bool) -> None:
                     "variadic": k.variadic,
                     "gives": k.gives,
                     "dimensions": sorted(k.ndims),
-                    "values": dict(k.values),
+                    "values": {
+                        name: {"unit": unit, "definition": k.definitions.get(name, "")}
+                        for name, unit in k.values.items()
+                    },
+                    "columns": {name: {"unit": u, "definition": d} for name, (u, d) in k.columns.items()},
                     "parameters": [
                         {"name": n, "type": t, "default": d, "description": desc}
                         for n, t, d, desc in param_rows(k)
@@ -495,9 +499,18 @@ def steps_command(kind: str | None, as_json: bool) -> None:
         values = RichTable(title="values (for limits: STEP.NAME)", title_justify="left")
         values.add_column("value")
         values.add_column("unit")
+        values.add_column("definition")
         for name, unit in k.values.items():
-            values.add_row(name, unit)
+            values.add_row(name, unit, Text(k.definitions.get(name, "")))
         console.print(values)
+    if k.columns:
+        columns = RichTable(title="table columns (objects.csv)", title_justify="left")
+        columns.add_column("column")
+        columns.add_column("unit")
+        columns.add_column("definition")
+        for name, (unit, text) in k.columns.items():
+            columns.add_row(name, unit, Text(text))
+        console.print(columns)
 
 
 # ---------------------------------------------------------------- schema

@@ -133,6 +133,7 @@ class LocalExecutor:
         self, recipe: Recipe, samples: list[Sample], lot: Path, store: Store, on_image: OnImage | None
     ) -> list[ImageResult]:
         import concurrent.futures as cf
+        import concurrent.futures.process  # noqa: F401  (BrokenProcessPool)
         import multiprocessing
 
         cache_root = store.location if isinstance(store, DiskStore) else None
@@ -151,7 +152,14 @@ class LocalExecutor:
             while queue or pending:
                 while queue and len(pending) < 2 * self.jobs:
                     index, sample = queue.pop()
-                    pending[pool.submit(_worker_task, sample, str(lot))] = index
+                    try:
+                        pending[pool.submit(_worker_task, sample, str(lot))] = index
+                    except cf.process.BrokenProcessPool as err:
+                        # a worker died and took the pool with it: what is left is incomplete
+                        result = ImageResult(id=sample.id).fail(f"not analysed: the worker pool stopped ({err})")
+                        results[index] = result
+                        if on_image is not None:
+                            on_image(result)
                 done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
                 for future in done:
                     index = pending.pop(future)

@@ -81,6 +81,8 @@ def describe_type(annotation: Any) -> str:
         return "length"
     if annotation is Area:
         return "area"
+    if getattr(annotation, "__name__", "") == "Volume":
+        return "volume"
     if origin is Literal:
         return " | ".join(str(a) for a in args)
     if origin is Annotated:

@@ -77,6 +77,10 @@ class StepKind:
     accepts_color: bool = False
     #: distributions whose versions enter the cache key of this step's results
     libraries: tuple[str, ...] = ("numpy",)
+    #: one-line definition of each value (shown by ``lotproof steps KIND``)
+    definitions: Mapping[str, str] = field(default_factory=dict)
+    #: table columns the step gives: name -> (unit, definition)
+    columns: Mapping[str, tuple[str, str]] = field(default_factory=dict)
 
     @property
     def summary(self) -> str:
@@ -116,6 +120,8 @@ def step(
     ndims: Sequence[int] = (2,),
     accepts_color: bool = False,
     libraries: Sequence[str] = ("numpy",),
+    definitions: Mapping[str, str] | None = None,
+    columns: Mapping[str, tuple[str, str]] | None = None,
 ) -> Callable[[Callable[..., Any]], Callable[..., Any]]:
     """Register ``func`` as the step kind ``name`` (see the module docstring)."""
     accepted = tuple(
@@ -145,6 +151,8 @@ def step(
             ndims=frozenset(ndims),
             accepts_color=accepts_color,
             libraries=tuple(libraries),
+            definitions=dict(definitions or {}),
+            columns=dict(columns or {}),
         )
         return func
 

@@ -329,6 +329,15 @@ def _object_ids(data: np.ndarray, connectivity: int) -> tuple[np.ndarray, np.nda
     values=MEASURE_VALUES,
     ndims=(2, 3),
     libraries=("numpy", "scipy", "skimage"),
+    definitions=VALUE_DEFINITIONS,
+    columns={
+        **{name: (unit, COLUMN_DEFINITIONS[name]) for name, unit in OBJECT_COLUMNS.items()},
+        **{
+            f"{name} (3-D)": (unit, COLUMN_DEFINITIONS_3D[name])
+            for name, unit in OBJECT_COLUMNS_3D.items()
+            if COLUMN_DEFINITIONS_3D[name] != COLUMN_DEFINITIONS.get(name)
+        },
+    },
 )
 def measure(params: MeasureParams, data: np.ndarray, *, spacing: tuple[float, ...]) -> Output:
     """Measure every object (table) and the whole image or volume (values), in physical units.

@@ -6,6 +6,7 @@ import hashlib
 import json
 import multiprocessing
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -343,12 +344,17 @@ def test_corrupt_entry_in_a_run_is_recomputed_and_reported(tmp_path: Path) -> No
     assert _rows(again.run_dir, "objects.csv") == _rows(cold.run_dir, "objects.csv")
 
 
+_WHEN = re.compile(rb"\d{8}T\d{6}Z|\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2}Z|local, \d+ process(es)?")
+
+
 def _run_files(run: Path) -> dict[str, bytes]:
+    # The ledger holds timings and the command line, and SHA256SUMS the hash of the report,
+    # which names the run folder, its start time and how many processes ran it; with those
+    # masked, every file is identical.
     return {
-        p.relative_to(run).as_posix(): p.read_bytes()
+        p.relative_to(run).as_posix(): _WHEN.sub(b"<time>", p.read_bytes())
         for p in sorted(run.rglob("*"))
-        # the ledger holds timings and the command line; everything else must be identical
-        if p.is_file() and p.name not in ("resolved.json", "ledger.jsonl")
+        if p.is_file() and p.name not in ("resolved.json", "ledger.jsonl", "SHA256SUMS")
     }
 
 
