@@ -103,12 +103,15 @@ def _encode(result: Any, arrays: list[np.ndarray]) -> dict[str, Any]:
         arrays.append(array)
         return {"array": {"dtype": array.dtype.str, "shape": list(array.shape), "nbytes": array.nbytes}}
     if isinstance(result, Table):
-        return {
+        spec: dict[str, Any] = {
             "table": [
                 [name, result.units[name], _encode(np.asarray(column), arrays)]
                 for name, column in result.columns.items()
             ]
         }
+        if not result.per_object:
+            spec["rows"] = "not-objects"
+        return spec
     if isinstance(result, Output):
         return {
             "output": {
@@ -125,7 +128,11 @@ class _Corrupt(Exception):
 
 
 def _decode(spec: Any, buffer: memoryview, offset: list[int]) -> Any:
-    if not isinstance(spec, dict) or len(spec) != 1:
+    if not isinstance(spec, dict) or not spec:
+        raise _Corrupt("malformed header")
+    per_object = spec.get("rows") != "not-objects"
+    spec = {k: v for k, v in spec.items() if k != "rows"}
+    if len(spec) != 1:
         raise _Corrupt("malformed header")
     ((kind, body),) = spec.items()
     if kind == "array":
@@ -147,7 +154,7 @@ def _decode(spec: Any, buffer: memoryview, offset: list[int]) -> Any:
         for name, unit, column in body:
             columns[name] = _decode(column, buffer, offset)
             units[name] = unit
-        return Table(columns=columns, units=units)
+        return Table(columns=columns, units=units, per_object=per_object)
     if kind == "output":
         return Output(
             data=_decode(body["data"], buffer, offset),
@@ -158,6 +165,10 @@ def _decode(spec: Any, buffer: memoryview, offset: list[int]) -> Any:
 
 
 # ---------------------------------------------------------------- the store
+
+
+class _NotACacheFolder(OSError):
+    """The folder given as the cache holds something else; never written to."""
 
 
 @dataclass
@@ -180,6 +191,7 @@ class DiskStore:
         self._on_corrupt = on_corrupt
         self._messages: list[str] = []
         self._ready = False
+        self._unwritable = False
 
     def _prepare(self) -> None:
         if self._ready:
@@ -194,11 +206,12 @@ class DiskStore:
             except (OSError, ValueError):
                 info = {}
             if info.get("format") != CACHE_FORMAT:
-                raise OSError(f"{self.root} is not a {CACHE_FORMAT} cache folder ({_MARKER})")
+                raise _NotACacheFolder(f"{self.root} is not a {CACHE_FORMAT} cache folder ({_MARKER})")
         self._ready = True
 
     def drain_messages(self) -> list[str]:
-        """Reports of corrupt entries since the last call (each key reported once)."""
+        """Reports of corrupt entries (each key once) and of a cache that cannot be
+        written (once), since the last call."""
         messages, self._messages = self._messages, []
         return messages
 
@@ -277,7 +290,13 @@ class DiskStore:
             return None
 
     def put(self, key: str, result: Any) -> str:
-        self._prepare()
+        """Store ``result``; returns its content checksum.
+
+        The cache is a convenience, not evidence: when an entry cannot be written
+        (a full disk, a read-only folder) the result is still returned and used, the
+        failure is reported once (see :meth:`drain_messages`) and nothing partial is
+        left under the entry's name.
+        """
         arrays: list[np.ndarray] = []
         spec = _encode(result, arrays)
         checksum = content_checksum(result)
@@ -285,6 +304,21 @@ class DiskStore:
             {"format": CACHE_FORMAT, "key": key, "result": spec, "checksum": checksum}
         )
         path = self.path(key)
+        try:
+            self._prepare()
+            self._write(path, header, arrays)
+        except _NotACacheFolder:
+            raise
+        except OSError as err:
+            if not self._unwritable:
+                self._unwritable = True
+                self._messages.append(
+                    f"cache {self.root}: cannot store results ({err.strerror or err}); "
+                    "results are computed and recorded, but not cached"
+                )
+        return checksum
+
+    def _write(self, path: Path, header: bytes, arrays: list[np.ndarray]) -> None:
         path.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=path.parent)
         try:
@@ -302,7 +336,6 @@ class DiskStore:
             except OSError:
                 pass
             raise
-        return checksum
 
     # ------------------------------------------------------------ maintenance
 

@@ -527,23 +527,36 @@ def schema() -> None:
 # ---------------------------------------------------------------- demo
 
 
+def _scenario_names() -> list[str]:
+    from runner.demo import SCENARIOS
+
+    return list(SCENARIOS)
+
+
 @cli.command()
+@click.argument("name", required=False, type=click.Choice(_scenario_names()))
 @click.option("--out", type=click.Path(file_okay=False, path_type=Path), default=None,
-              help="folder that receives the run folder (default: demo_run/runs)")
+              help="folder that receives the run folders (default: demo_run/runs)")
 @click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
-def demo(out: Path | None, as_json: bool) -> None:
-    """Run the bundled demo lot (sintered bronze filter discs) through its recipe.
+def demo(name: str | None, out: Path | None, as_json: bool) -> None:
+    """Run the bundled demo lots through their recipes: every scenario, or NAME.
 
-    Exits 0 when the demo ran, whatever the verdicts.
+    filter-disc: sintered bronze filter discs (porosity); powder: metal powder (size
+    distribution, touching particles); lattice: CT volumes of lattice coupons (gas voids).
+    Exits 0 when the demos ran, whatever their verdicts.
     """
-    from runner.demo import demo_paths
+    from runner.demo import SCENARIOS, demo_paths
 
-    recipe, lot, default_out = demo_paths()
-    code = _run(recipe, (lot,), out or default_out, as_json, quiet=False, no_cache=True)
-    if code not in (EXIT_OK, EXIT_LIMIT_FAILED, EXIT_BAD_INPUT):
-        raise SystemExit(code)
+    names = [name] if name else list(SCENARIOS)
+    for scenario in names:
+        recipe, lot, default_out = demo_paths(scenario)
+        if not as_json:
+            _err().print(Text(f"demo {scenario}: {SCENARIOS[scenario].summary}", style="bold"))
+        code = _run(recipe, (lot,), out or default_out, as_json, quiet=False, no_cache=True)
+        if code not in (EXIT_OK, EXIT_LIMIT_FAILED, EXIT_BAD_INPUT):
+            raise SystemExit(code)
     if not as_json:
-        _err().print("demo finished; the verdicts above are the demo lot's own.")
+        _err().print("demo finished; the verdicts above are the demo lots' own.")
 
 
 def main(argv: list[str] | None = None) -> None:

@@ -72,16 +72,15 @@ def content_checksum(data: Any) -> str:
     if isinstance(data, np.ndarray):
         return hash_array(data)
     if isinstance(data, Table):
-        return _sha256(
-            canonical_json(
-                {
-                    "table": [
-                        [name, data.units[name], hash_array(np.asarray(column))]
-                        for name, column in data.columns.items()
-                    ]
-                }
-            )
-        )
+        described: dict[str, Any] = {
+            "table": [
+                [name, data.units[name], hash_array(np.asarray(column))]
+                for name, column in data.columns.items()
+            ]
+        }
+        if not data.per_object:  # per-object tables keep the checksum they always had
+            described["per_object"] = False
+        return _sha256(canonical_json(described))
     if isinstance(data, Output):
         return _sha256(
             canonical_json(

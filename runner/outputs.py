@@ -5,7 +5,8 @@ Layout (see DESIGN.md, "Run record")::
     RUN/recipe.yaml      exact bytes of the recipe as run
     RUN/resolved.json    every parameter with defaults filled and lengths in pixels
     RUN/images.csv       one row per image: status, reason, values, verdicts
-    RUN/objects.csv      one row per object of every table-giving step
+    RUN/objects.csv      one row per object of every per-object table
+    RUN/tables.csv       rows of other tables (e.g. size-spectrum classes), when there are any
     RUN/inputs.json      every input file: path, size, sha256, shape, dtype, calibration
     RUN/steps.csv        every (image, step): cache key, result checksum, computed or reused
     RUN/verdicts.json    every limit and the lot verdict
@@ -177,10 +178,13 @@ def _images_csv(recipe: Recipe, results: list[ImageResult], verdicts: Verdicts) 
     return _csv(rows)
 
 
-def _objects_csv(recipe: Recipe, results: list[ImageResult]) -> bytes:
+def _tables_csv(recipe: Recipe, results: list[ImageResult], *, per_object: bool) -> bytes:
+    """Rows of every table-giving step: ``objects.csv`` (per-object tables) or ``tables.csv``."""
     columns: list[tuple[str, str]] = []
     for r in results:
         for table in r.tables.values():
+            if table.per_object != per_object:
+                continue
             for name in table.columns:
                 entry = (name, table.units[name])
                 if entry not in columns:
@@ -190,7 +194,7 @@ def _objects_csv(recipe: Recipe, results: list[ImageResult]) -> bytes:
     for r in results:
         for step_name in recipe.order:
             table = r.tables.get(step_name)
-            if table is None:
+            if table is None or table.per_object != per_object:
                 continue
             cells = [
                 _column_text(table.columns[n]) if n in table.columns else [""] * table.n_rows
@@ -331,11 +335,15 @@ def write_run_files(
     resolved["lot"] = str(lot)
     write_bytes(run / "resolved.json", _json(resolved))
     write_bytes(run / "images.csv", _images_csv(recipe, results, verdicts))
-    write_bytes(run / "objects.csv", _objects_csv(recipe, results))
+    write_bytes(run / "objects.csv", _tables_csv(recipe, results, per_object=True))
+    extra = [r for r in results for t in r.tables.values() if not t.per_object]
+    if extra:
+        write_bytes(run / "tables.csv", _tables_csv(recipe, results, per_object=False))
     write_bytes(run / "steps.csv", _steps_csv(results))
     inputs = {r.id: r.inputs for r in results}
     write_bytes(run / "inputs.json", _json(inputs))
     kept = _write_kept(run, results)
     write_bytes(run / "verdicts.json", _json(verdicts_document(recipe, results, verdicts)))
-    return ["recipe.yaml", "resolved.json", "images.csv", "objects.csv", "steps.csv", "inputs.json", *kept,
+    tables = ["tables.csv"] if extra else []
+    return ["recipe.yaml", "resolved.json", "images.csv", "objects.csv", *tables, "steps.csv", "inputs.json", *kept,
             "verdicts.json"]

@@ -12,15 +12,18 @@ __all__ = ["Table", "Output"]
 
 @dataclass(frozen=True)
 class Table:
-    """Per-object rows, stored by column.
+    """Rows stored by column: per-object measurements, or other rows (size classes).
 
     ``columns`` maps a column name to a 1-D numpy array; all columns have the same
-    length and rows are sorted by ``label``. ``units`` gives each column's unit
-    (``"-"`` for dimensionless or identifiers).
+    length. ``units`` gives each column's unit (``"-"`` for dimensionless or
+    identifiers). ``per_object`` says that each row is one object (rows sorted by
+    ``label``; written to ``objects.csv``); other tables, such as the classes of a
+    size spectrum, are written to ``tables.csv``.
     """
 
     columns: Mapping[str, np.ndarray]
     units: Mapping[str, str]
+    per_object: bool = True
 
     def __post_init__(self) -> None:
         lengths = {len(v) for v in self.columns.values()}

@@ -128,7 +128,7 @@ def _footprint(name: str, radius: float, limit: list[int]) -> np.ndarray:
     params=SizeSpectrumParams,
     takes=["mask"],
     gives="table",
-    version="1",
+    version="2",
     values=SPECTRUM_VALUES,
     ndims=(2,),
     libraries=("numpy", "scipy", "numba"),
@@ -271,6 +271,7 @@ def size_spectrum(
             "fraction": np.asarray(fraction, dtype=np.float64),
         },
         units=dict(SPECTRUM_COLUMNS),
+        per_object=False,  # rows are size classes, not objects: written to tables.csv
     )
     return Output(
         data=table,
