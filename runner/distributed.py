@@ -326,6 +326,8 @@ def _local_cluster(distributed: Any, n_workers: int) -> Any:
             processes=True,
             host="127.0.0.1",
             dashboard_address=None,
-            scheduler_kwargs={"allowed_failures": ALLOWED_FAILURES},
+            # the scheduler always serves HTTP (health, metrics; no dashboard here): on a free
+            # loopback port, not dask's usual 8787, which another cluster may hold
+            scheduler_kwargs={"allowed_failures": ALLOWED_FAILURES, "dashboard_address": "127.0.0.1:0"},
             env=pinned,  # also for workers the nanny restarts later
         )

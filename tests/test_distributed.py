@@ -280,6 +280,27 @@ def test_results_come_back_in_the_samples_order_and_on_image_sees_each_once(
     assert summary.exit_code == EXIT_OK
 
 
+def test_an_existing_scheduler_by_address_and_by_dask_config(tmp_path: Path, executor: Any) -> None:
+    import dask
+
+    lot = _lot(tmp_path, 3)
+    (tmp_path / "recipe.yaml").write_text(SYNTH_RECIPE)
+    recipe = load_recipe(tmp_path / "recipe.yaml")
+    address = executor.client.scheduler.address
+    local = run_lot(recipe, lot, tmp_path / "local", jobs=1)
+    with open_executor("dask", jobs=1, scheduler=address, workers=None) as by_address:
+        assert by_address.description.startswith(f"dask, scheduler {address}, 2 workers at start")
+        remote = run_lot(recipe, lot, tmp_path / "remote", executor=by_address)
+    # source: the local executor (runner.pool.LocalExecutor, jobs=1), the reference run
+    assert _run_files(remote.run_dir) == _run_files(local.run_dir)
+    # $DASK_SCHEDULER_ADDRESS is read into dask's config as scheduler-address
+    with dask.config.set({"scheduler-address": address}):
+        with open_executor("dask", jobs=1, scheduler=None, workers=None) as by_config:
+            assert by_config.description.startswith(f"dask, scheduler {address}")
+    # closing a client of an existing scheduler leaves the scheduler and its workers running
+    assert len(_workers(executor)) == 2
+
+
 # ------------------------------------------------------------------ dead workers
 
 
