@@ -17,6 +17,18 @@ image incomplete.
 Every file is read once into memory (bounded by :data:`MAX_FILE_BYTES`), hashed,
 and decoded from that copy, so the checksum recorded is the checksum of the bytes
 analysed. Nothing is ever written into the lot folder.
+
+A file is refused (its image is incomplete, with the reason) when it is empty,
+larger than :data:`MAX_FILE_BYTES`, a symbolic link loop or a link leading out
+of the lot; when its content is not what its name says; when it is cut short
+(every strip, every page the IFD chain or the description promises, and the
+whole extent of a contiguous series must lie in the file); when its header
+claims more than :data:`MAX_PIXELS` pixels (checked from the header, before any
+pixel is decoded; Pillow's decompression-bomb limit is set to the same number);
+when it is not 2-D or 3-D, smaller than :data:`MIN_SIDE` along an axis, of an
+unsupported pixel type, holds NaN or infinite values, or has no contrast (every
+pixel the same: a blank frame would otherwise measure as "no objects" and pass
+a ``max`` limit). A tifffile logger warning is a refusal, never ignored.
 """
 
 from __future__ import annotations
@@ -343,6 +355,41 @@ def _series_data(tif: Any, shown: str) -> np.ndarray:
     return np.stack([np.asarray(s.asarray()) for s in series])
 
 
+def _damaged(message: str, pages: int, size: int, shown: str) -> str:
+    """The reason for a TIFF that tifffile warned about (a warning is a refusal, never a shrug).
+
+    A cut multi-page file shows up as a page offset past the end of the file;
+    tifffile then returns the pages before it with only a logger warning.
+    """
+    found = re.search(r"invalid page offset (\d+)", message)
+    if found and int(found.group(1)) >= size:
+        return (
+            f"{shown}: truncated TIFF (page {pages + 1} is said to begin at byte "
+            f"{found.group(1)}, the file has {size}; {pages} page(s) read)"
+        )
+    return f"{shown}: damaged TIFF ({message})"
+
+
+def _check_page_count(tif: Any, pages: int, shown: str) -> None:
+    """Refuse a file whose own description promises more pages than it holds."""
+    declared = None
+    shaped = tif.shaped_metadata or ()
+    if tif.is_shaped and shaped and not shaped[0].get("truncated"):
+        shape = shaped[0].get("shape")
+        page_shape = tif.pages.first.shape
+        if shape and math.prod(page_shape):
+            declared = math.prod(int(n) for n in shape) // math.prod(page_shape)
+    elif tif.is_imagej:
+        images = (tif.imagej_metadata or {}).get("images")
+        if isinstance(images, int):
+            declared = images
+    if declared is not None and declared > pages:
+        raise InputError(
+            f"{shown}: damaged multi-page TIFF (its description says {declared} pages, the "
+            f"file holds {pages})"
+        )
+
+
 def _decode_tiff(raw: bytes, shown: str) -> tuple[np.ndarray, bool, Calibration]:
     import tifffile
 
@@ -355,7 +402,7 @@ def _decode_tiff(raw: bytes, shown: str) -> tuple[np.ndarray, bool, Calibration]
             with tifffile.TiffFile(io.BytesIO(raw)) as tif:
                 pages = list(tif.pages)
                 if handler.messages:
-                    raise InputError(f"{shown}: damaged TIFF ({handler.messages[0]})")
+                    raise InputError(_damaged(handler.messages[0], len(pages), len(raw), shown))
                 if not pages:
                     raise InputError(f"{shown}: TIFF without images")
                 for n, page in enumerate(pages):
@@ -366,9 +413,22 @@ def _decode_tiff(raw: bytes, shown: str) -> tuple[np.ndarray, bool, Calibration]
                                 f"{offset + count}, the file has {len(raw)})"
                             )
                 series = tif.series[0]
+                # before any pixel is decoded: the shape comes from the header alone
                 _check_pixels(
-                    (len(tif.series),) + tuple(series.shape), series.dtype.itemsize, shown
+                    tuple(series.shape) if len(tif.series) == 1
+                    else (len(tif.series),) + tuple(series.shape),
+                    series.dtype.itemsize, shown,
                 )
+                _check_page_count(tif, len(pages), shown)
+                for one in tif.series:
+                    # a contiguous series is read in one piece from its first page's offset,
+                    # past the strips that page declares: check the whole extent
+                    start = one.dataoffset
+                    if start is not None and start + one.nbytes > len(raw):
+                        raise InputError(
+                            f"{shown}: truncated TIFF (the image data need bytes up to "
+                            f"{start + one.nbytes}, the file has {len(raw)})"
+                        )
                 page_total = sum(len(s.pages) for s in tif.series)
                 if page_total < len(pages) and len(tif.series) == 1:
                     raise InputError(
@@ -376,7 +436,7 @@ def _decode_tiff(raw: bytes, shown: str) -> tuple[np.ndarray, bool, Calibration]
                     )
                 data = _series_data(tif, shown)
                 if handler.messages:
-                    raise InputError(f"{shown}: damaged TIFF ({handler.messages[0]})")
+                    raise InputError(_damaged(handler.messages[0], len(pages), len(raw), shown))
                 photometric = getattr(pages[0].photometric, "name", str(pages[0].photometric))
                 samples = pages[0].samplesperpixel
                 is_color = photometric in ("RGB", "YCBCR", "PALETTE") or samples in (3, 4)
@@ -418,8 +478,18 @@ def _decode_pillow(raw: bytes, shown: str, what: str) -> tuple[np.ndarray, bool,
                 data = np.array(im)
     except InputError:
         raise
+    except (Image.DecompressionBombWarning, Image.DecompressionBombError) as err:
+        # raised by Image.open from the header alone, before any pixel is decoded
+        claimed = re.search(r"\((\d+) pixels\)", str(err))
+        raise InputError(
+            f"{shown}: the header claims {claimed.group(1) if claimed else 'too many'} pixels, "
+            f"more than the {MAX_PIXELS} pixels lotproof analyses in one image"
+        ) from None
     except Exception as err:
-        raise InputError(f"{shown}: cannot read as {what} ({type(err).__name__}: {err})") from None
+        text = str(err)
+        if "truncated" in text.lower() or "broken data stream" in text:
+            raise InputError(f"{shown}: truncated {what} ({text})") from None
+        raise InputError(f"{shown}: cannot read as {what} ({type(err).__name__}: {text})") from None
     is_color = mode in ("RGB", "RGBA", "CMYK", "YCbCr")
     calibration = Calibration(None, "no physical resolution")
     if dpi:
@@ -503,6 +573,28 @@ def _check_data(data: np.ndarray, is_color: bool, shown: str) -> np.ndarray:
             f"{shown}: image of shape {data.shape} is smaller than {MIN_SIDE} pixels along an axis"
         )
     if data.dtype.kind == "f" and not np.isfinite(data).all():
-        bad = int(np.count_nonzero(~np.isfinite(data)))
-        raise InputError(f"{shown}: {bad} pixels are NaN or infinite")
+        nan = int(np.count_nonzero(np.isnan(data)))
+        inf = int(np.count_nonzero(np.isinf(data)))
+        raise InputError(
+            f"{shown}: {nan + inf} of {data.size} pixels are NaN or infinite ({nan} NaN, "
+            f"{inf} infinite); lotproof measures finite values only"
+        )
+    _check_contrast(data, is_color, shown)
     return np.ascontiguousarray(data)
+
+
+def _check_contrast(data: np.ndarray, is_color: bool, shown: str) -> None:
+    """Refuse an image whose pixels are all the same: a blank frame, not a sample.
+
+    A camera that failed, a closed shutter or a frame of zeros written by a
+    crashed acquisition is constant. Measured, it has no objects: 0 porosity,
+    0 inclusions, which passes every ``max`` limit. That must never count as a
+    result, so a constant image is incomplete with the reason "no contrast".
+    """
+    pixels = data.reshape(-1, data.shape[-1]) if is_color else data.reshape(-1)
+    low = pixels.min(axis=0)
+    if np.array_equal(low, pixels.max(axis=0)):
+        value = tuple(low.tolist()) if is_color else low.item()
+        raise InputError(
+            f"{shown}: no contrast (every pixel is {value}); a blank frame cannot be measured"
+        )
