@@ -163,6 +163,7 @@ class LedgerWriter:
     def __init__(self, path: Path):
         self.path = Path(path)
         self._seq = 0
+        self._size = 0
         self._last = GENESIS
         self._seal: str | None = None
         try:
@@ -206,11 +207,19 @@ class LedgerWriter:
                 pending = pending[written:]
             os.fsync(self._file.fileno())
         except OSError as err:
+            # An event that is not known to be on disk is not in the record: cut it off,
+            # so that a failed run-end never leaves a ledger that verifies as intact.
+            try:
+                os.ftruncate(self._file.fileno(), self._size)
+                self._file.seek(self._size)
+            except OSError:
+                pass
             raise LedgerWriteError(
                 f"{self.path}: cannot write event {self._seq + 1} ({err.strerror}); "
                 "the record is incomplete"
             ) from None
         self._seq += 1
+        self._size += len(line) + 1
         self._last = self._seal = line_hash(line)
         return self._seal
 
