@@ -213,70 +213,31 @@ def _run(
     cache: Path | None = None,
     no_cache: bool = False,
     sign: Path | None = None,
+    executor_kind: str = "local",
+    scheduler: str | None = None,
+    workers: int | None = None,
 ) -> int:
     from runner.recipe import load_recipe
-    from runner.run import run_lot, usable_cores
+    from runner.run import usable_cores
 
     try:
         checked = load_recipe(recipe)
     except RecipeError as err:
         _fail_recipe(err, as_json)
+    from runner.backends import ExecutorError, open_executor
+
     store = _store(cache, no_cache)
     jobs = jobs or usable_cores()
     err_console = _err()
     documents = []
     codes: list[int] = []
-    for lot in lots:
-        progress = None
-        task = None
-        counts = {"done": 0, "reused": 0, "steps": 0, "incomplete": 0}
-        if not quiet and err_console.is_terminal:
-            from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
-
-            progress = Progress(
-                TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
-                TextColumn("{task.fields[status]}"), TimeElapsedColumn(),
-                console=err_console, transient=True,
-            )
-            progress.start()
-
-        def started(n: int, lot: Path = lot) -> None:
-            nonlocal task
-            if progress is not None:
-                task = progress.add_task(f"{lot.name}", total=n, status="")
-            elif not quiet:
-                err_console.print(f"{lot}: {n} images, {jobs} job(s), cache: {store.location}")
-
-        def done(result: Any) -> None:
-            counts["done"] += 1
-            counts["steps"] += len(result.steps)
-            counts["reused"] += sum(1 for s in result.steps if s.cache != "computed")
-            counts["incomplete"] += result.status != "ok"
-            if progress is not None and task is not None:
-                status = f"{counts['reused']}/{counts['steps']} steps reused"
-                if counts["incomplete"]:
-                    status += f", {counts['incomplete']} incomplete"
-                progress.update(task, advance=1, status=status)
-            if not quiet:
-                for note in result.notes:
-                    err_console.print(Text(f"note: {note}", style="yellow"))
-                if result.status != "ok":
-                    reason = result.reason
-                    if not reason.startswith(result.id):
-                        reason = f"{result.id}: {reason}"
-                    err_console.print(Text(f"incomplete: {reason}", style="yellow"))
-
-        try:
-            summary = run_lot(checked, lot, out, store=store, jobs=jobs, sign=sign,
-                              on_start=started, on_image=done)
-        finally:
-            if progress is not None:
-                progress.stop()
-        if as_json:
-            documents.append(summary.as_json())
-        else:
-            _print_summary(summary)
-        codes.append(summary.exit_code)
+    try:
+        with open_executor(executor_kind, jobs=jobs, scheduler=scheduler, workers=workers) as executor:
+            for lot in lots:
+                _run_one(checked, lot, out, as_json, quiet, store, executor, sign, err_console,
+                         documents, codes)
+    except ExecutorError as err:
+        raise click.UsageError(str(err)) from None
     if as_json:
         _emit_json(documents[0] if len(documents) == 1 else documents)
     # the same precedence as one lot's exit code: bad data, then a failed limit
@@ -284,6 +245,63 @@ def _run(
         if code in codes:
             return code
     return EXIT_OK
+
+
+def _run_one(checked: Any, lot: Path, out: Path, as_json: bool, quiet: bool, store: Any,
+             executor: Any, sign: Path | None, err_console: Console,
+             documents: list[Any], codes: list[int]) -> None:
+    from runner.run import run_lot
+
+    progress = None
+    task = None
+    counts = {"done": 0, "reused": 0, "steps": 0, "incomplete": 0}
+    if not quiet and err_console.is_terminal:
+        from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+
+        progress = Progress(
+            TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+            TextColumn("{task.fields[status]}"), TimeElapsedColumn(),
+            console=err_console, transient=True,
+        )
+        progress.start()
+
+    def started(n: int, lot: Path = lot) -> None:
+        nonlocal task
+        if progress is not None:
+            task = progress.add_task(f"{lot.name}", total=n, status="")
+        elif not quiet:
+            err_console.print(f"{lot}: {n} images, {executor.description}, cache: {store.location}")
+
+    def done(result: Any) -> None:
+        counts["done"] += 1
+        counts["steps"] += len(result.steps)
+        counts["reused"] += sum(1 for s in result.steps if s.cache != "computed")
+        counts["incomplete"] += result.status != "ok"
+        if progress is not None and task is not None:
+            status = f"{counts['reused']}/{counts['steps']} steps reused"
+            if counts["incomplete"]:
+                status += f", {counts['incomplete']} incomplete"
+            progress.update(task, advance=1, status=status)
+        if not quiet:
+            for note in result.notes:
+                err_console.print(Text(f"note: {note}", style="yellow"))
+            if result.status != "ok":
+                reason = result.reason
+                if not reason.startswith(result.id):
+                    reason = f"{result.id}: {reason}"
+                err_console.print(Text(f"incomplete: {reason}", style="yellow"))
+
+    try:
+        summary = run_lot(checked, lot, out, store=store, executor=executor, sign=sign,
+                          on_start=started, on_image=done)
+    finally:
+        if progress is not None:
+            progress.stop()
+    if as_json:
+        documents.append(summary.as_json())
+    else:
+        _print_summary(summary)
+    codes.append(summary.exit_code)
 
 
 @cli.command()
@@ -298,17 +316,27 @@ def _run(
 @click.option("--no-cache", is_flag=True, help="compute everything, store nothing")
 @click.option("--sign", type=click.Path(dir_okay=False, exists=True, path_type=Path), default=None,
               help="Ed25519 private key (from `lotproof keygen`) to sign the run's seal with")
+@click.option("--executor", "executor_kind", type=click.Choice(["local", "dask", "dask-local"]),
+              default="local", show_default=True,
+              help="where images are analysed: this machine, an existing dask scheduler, or a dask "
+              "cluster started for the run")
+@click.option("--scheduler", default=None, metavar="tcp://HOST:PORT",
+              help="the dask scheduler for --executor dask [default: $DASK_SCHEDULER_ADDRESS]")
+@click.option("--workers", type=click.IntRange(min=1), default=None,
+              help="worker processes for --executor dask-local [default: usable cores]")
 @click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
 @click.option("--quiet", "-q", is_flag=True, help="no progress or messages on stderr")
 def run(recipe: Path, lots: tuple[Path, ...], out: Path, jobs: int | None, cache: Path | None,
-        no_cache: bool, sign: Path | None, as_json: bool, quiet: bool) -> None:
+        no_cache: bool, sign: Path | None, executor_kind: str, scheduler: str | None,
+        workers: int | None, as_json: bool, quiet: bool) -> None:
     """Run RECIPE on each LOT folder; write a new run folder per lot under --out.
 
     Exit 0 when every limit passed, 1 when a limit failed, 3 when an image could not
     be analysed (the lot is incomplete), 2 when the recipe is invalid.
     """
     raise SystemExit(
-        _run(recipe, lots, out, as_json, quiet, jobs=jobs, cache=cache, no_cache=no_cache, sign=sign)
+        _run(recipe, lots, out, as_json, quiet, jobs=jobs, cache=cache, no_cache=no_cache, sign=sign,
+             executor_kind=executor_kind, scheduler=scheduler, workers=workers)
     )
 
 

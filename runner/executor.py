@@ -20,7 +20,7 @@ import numpy as np
 
 from runner.cache import NullStore, Store
 from runner.errors import InputError
-from runner.hashing import input_key, library_versions, step_key
+from runner.hashing import content_checksum, input_key, library_versions, step_key
 from runner.inputs import LoadedImage, Sample, read_image
 from runner.recipe import Recipe
 from steps import REGISTRY, Area, Length, Output, StepParams, Table, resolve_to_px
@@ -271,7 +271,13 @@ def analyse_sample(
                     raise _StepFailed(
                         f"step {name!r} ({step.kind}) reported undeclared values {sorted(undeclared)}"
                     )
-            checksum = store.put(key, out)
+            try:
+                checksum = store.put(key, out)
+            except OSError as err:  # the cache is a help, not evidence: go on without it
+                checksum = content_checksum(out)
+                note = f"step {name!r}: result not cached ({err.strerror or err})"
+                if note not in result.notes:
+                    result.notes.append(note)
             records[name] = StepRecord(
                 name, step.kind, kind.version, key, checksum, "computed", seconds
             )

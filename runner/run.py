@@ -9,8 +9,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from runner.cache import NullStore, Store
-from runner.errors import EXIT_BAD_INPUT, EXIT_LIMIT_FAILED, EXIT_OK
+from runner.cache import DiskStore, NullStore, Store
+from runner.errors import EXIT_BAD_INPUT, EXIT_INVALID, EXIT_LIMIT_FAILED, EXIT_OK, LotproofError
 from runner.executor import ImageResult
 from runner.inputs import Sample, find_samples
 from runner.ledger import (
@@ -29,7 +29,23 @@ from runner.report import write_report
 from runner.pool import LocalExecutor, LotExecutor, usable_cores
 from runner.recipe import Recipe, load_recipe
 
-__all__ = ["RunSummary", "exit_code_for", "run_lot", "usable_cores"]
+__all__ = ["RunSummary", "WritesIntoLotError", "exit_code_for", "run_lot", "usable_cores"]
+
+
+class WritesIntoLotError(LotproofError, ValueError):
+    """The output or cache folder lies inside the lot: lotproof never writes into a lot (exit 2)."""
+
+    exit_code = EXIT_INVALID
+
+
+def _refuse_inside_lot(lot: Path, folder: Path, what: str) -> None:
+    lot_real = lot.resolve()
+    real = Path(os.path.abspath(folder)).resolve()
+    if real == lot_real or lot_real in real.parents:
+        raise WritesIntoLotError(
+            f"{folder}: the {what} lies inside the lot folder {lot}; lotproof never writes "
+            f"into a lot (its files would become inputs of the next run): choose a {what} outside it"
+        )
 
 
 @dataclass
@@ -114,7 +130,8 @@ def _image_events(ledger: LedgerWriter, recipe: Recipe, result: ImageResult) -> 
             cache=record.cache, seconds=round(record.seconds, 6),
         )
     ledger.append(
-        "image", image=result.id, status=result.status, reason=result.reason, worker=result.worker
+        "image", image=result.id, status=result.status, reason=result.reason, worker=result.worker,
+        notes=list(result.notes),
     )
 
 
@@ -146,12 +163,18 @@ def run_lot(
         When the recipe is invalid (nothing ran).
     InputError
         When the lot folder cannot be used at all (nothing ran).
+    WritesIntoLotError
+        When ``out`` or the cache folder lies inside the lot (nothing ran).
     """
     if not isinstance(recipe, Recipe):
         recipe = load_recipe(recipe)
     store = store if store is not None else NullStore()
     executor = executor if executor is not None else LocalExecutor(jobs)
     lot = Path(lot)
+    if lot.is_dir():
+        _refuse_inside_lot(lot, Path(out), "output folder")
+        if isinstance(store, DiskStore):
+            _refuse_inside_lot(lot, store.root, "cache folder")
     if samples is None:
         samples = find_samples(lot, recipe.inputs)
     if sign is not None:
