@@ -56,6 +56,8 @@ _RANK = {4: 1, 8: 2, 6: 1, 18: 2, 26: 3}
 _SQRT2 = np.sqrt(2.0)
 
 _jit = numba.njit(cache=True, nogil=True, boundscheck=False)
+# small helpers of the inner loops
+_inline = numba.njit(cache=True, nogil=True, boundscheck=False, inline="always")
 
 #: Crofton perimeter contribution (pixel units) of each 2x2 configuration code,
 #: four directions (0, 45, 90, 135 degrees): the table of scikit-image 0.26's
@@ -170,7 +172,8 @@ def window_histogram_by_label_2d(ids: np.ndarray, count: int) -> np.ndarray:
     object were cut out alone. Row 0 is unused.
     """
     hist = np.zeros((count + 1, 16), dtype=np.int64)
-    _check(_label_quads(_as_ids(ids), count, hist), count)
+    if ids.size:
+        _check(_label_quads(_as_ids(ids), count, hist), count)
     return hist
 
 
@@ -300,43 +303,69 @@ def _renumber(flat, lookup):
 @_jit
 def _quads(mask, hist):
     height, width = mask.shape
+    blank = np.zeros(width, dtype=np.bool_)
+    # the codes of nearly every window, all background (0) or all foreground
+    # (15), are counted in registers; the others in memory
+    empty = 0
+    full = 0
     for i in range(height + 1):
+        up = mask[i - 1] if i > 0 else blank
+        down = mask[i] if i < height else blank
         tr = 0
         br = 0
-        for j in range(width + 1):
+        for j in range(width):
             # the window slides right: its left column is the last one's right column
             tl = tr
             bl = br
-            if j < width:
-                tr = 1 if i > 0 and mask[i - 1, j] else 0
-                br = 1 if i < height and mask[i, j] else 0
+            tr = 1 if up[j] else 0
+            br = 1 if down[j] else 0
+            code = 8 * tl + 2 * tr + 4 * bl + br
+            if code == 0:
+                empty += 1
+            elif code == 15:
+                full += 1
             else:
-                tr = 0
-                br = 0
-            hist[8 * tl + 2 * tr + 4 * bl + br] += 1
+                hist[code] += 1
+        hist[8 * tr + 4 * br] += 1  # the window over the right frame
+    hist[0] += empty
+    hist[15] += full
 
 
 @_jit
 def _label_quads(ids, count, hist):
     height, width = ids.shape
+    blank = np.zeros(width, dtype=ids.dtype)
+    touched = np.zeros(width + 1, dtype=np.bool_)
     for i in range(height + 1):
-        tr = 0
-        br = 0
+        up = ids[i - 1] if i > 0 else blank
+        down = ids[i] if i < height else blank
+        # which windows touch an object, and whether every id is in range: plain
+        # passes the compiler vectorises (measured: 2x faster than testing each
+        # window in the loop below, which then skips the empty ones)
+        bad = False
+        for j in range(width):
+            bad |= (down[j] < 0) | (down[j] > count)
+        if bad:
+            return False
+        touched[0] = (up[0] | down[0]) != 0
+        for j in range(1, width):
+            touched[j] = (up[j - 1] | down[j - 1] | up[j] | down[j]) != 0
+        touched[width] = (up[width - 1] | down[width - 1]) != 0
+        run_id = 0  # windows wholly inside one object, counted in a register
+        run = 0
         for j in range(width + 1):
-            tl = tr
-            bl = br
-            if j < width:
-                tr = ids[i - 1, j] if i > 0 else 0
-                br = ids[i, j] if i < height else 0
-                # every pixel is a window's BR once, and enters TL, TR, BL later
-                if br < 0 or br > count:
-                    return False
-            else:
-                tr = 0
-                br = 0
+            if not touched[j]:
+                continue
+            tl = up[j - 1] if j > 0 else 0
+            bl = down[j - 1] if j > 0 else 0
+            tr = up[j] if j < width else 0
+            br = down[j] if j < width else 0
             if tl == tr and tl == bl and tl == br:
-                if tl != 0:
-                    hist[tl, 15] += 1
+                if tl != run_id:
+                    hist[run_id, 15] += run
+                    run_id = tl
+                    run = 0
+                run += 1
                 continue
             # each distinct object in the window is credited once, at its first
             # position in the order TL, TR, BL, BR, with a bit wherever it occurs
@@ -348,6 +377,7 @@ def _label_quads(ids, count, hist):
                 hist[bl, 4 + (br == bl)] += 1
             if br != 0 and br != tl and br != tr and br != bl:
                 hist[br, 1] += 1
+        hist[run_id, 15] += run
     return True
 
 
@@ -424,7 +454,7 @@ def _boxes(ids, count, boxes):
 _NONE = np.int64(-(2**62))  # an empty level / line: below every coordinate
 
 
-@numba.njit(cache=True, nogil=True, boundscheck=False, inline="always")
+@_inline
 def _widen(low, high, t, lo_v, hi_v):
     if low[t] == _NONE or lo_v < low[t]:
         low[t] = lo_v
