@@ -196,3 +196,13 @@ def test_interrupted_run_is_unfinished(tmp_path: Path, monkeypatch: pytest.Monke
     report = verify_run(run_dir)
     assert report.status == "unfinished"
     assert report.exit_code == EXIT_INTEGRITY
+
+
+def test_rerun_of_the_demo_run_is_identical(tmp_path: Path) -> None:
+    root = Path(__file__).resolve().parent.parent
+    recorded = run_lot(root / "recipes" / "filter-disc-porosity.yaml", root / "demo_run" / "lot",
+                       tmp_path / "runs", jobs=2)
+    report = rerun(recorded.run_dir, out=tmp_path / "reruns")
+    assert report.identical, report.first_per_image()
+    # every (image, step) checksum was compared: 8 images x 4 steps, plus values and verdicts
+    assert report.compared > 8 * 4
