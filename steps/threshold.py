@@ -29,6 +29,7 @@ from typing import Literal
 import numpy as np
 from pydantic import Field, model_validator
 
+from steps import _threshold_kernels as _tk
 from steps._data import Output
 from steps._registry import StepParams, step
 from steps._units import Length
@@ -121,20 +122,20 @@ def _integer_histogram(image: np.ndarray, lo: int, hi: int) -> tuple[np.ndarray,
             f"takes at most {MAX_INTEGER_BINS}"
         )
     flat = image.reshape(-1)
-    direct = flat.dtype in (np.uint8, np.uint16)
-    length = hi + 1 if direct else span
-    counts = np.zeros(length, dtype=np.int64)
-    for start in range(0, flat.size, _BINCOUNT_CHUNK):
-        chunk = flat[start : start + _BINCOUNT_CHUNK]
-        if flat.dtype.kind == "u" and not direct:
-            # no wrap-around: every value is >= lo
-            chunk = (chunk - flat.dtype.type(lo)).astype(np.intp)
-        elif not direct:
-            # the difference is below span, so it fits whatever the dtype
-            chunk = chunk.astype(np.int64) - np.int64(lo)
-        counts += np.bincount(chunk, minlength=length)
-    if direct:
-        counts = counts[lo:]
+    if flat.dtype in _tk.DIRECT_DTYPES:
+        # one compiled pass, a counter per gray value 0..hi
+        counts = _tk.direct_histogram(flat, hi + 1)[lo:]
+    else:
+        counts = np.zeros(span, dtype=np.int64)
+        for start in range(0, flat.size, _BINCOUNT_CHUNK):
+            chunk = flat[start : start + _BINCOUNT_CHUNK]
+            if flat.dtype.kind == "u":
+                # no wrap-around: every value is >= lo
+                chunk = (chunk - flat.dtype.type(lo)).astype(np.intp)
+            else:
+                # the difference is below span, so it fits whatever the dtype
+                chunk = chunk.astype(np.int64) - np.int64(lo)
+            counts += np.bincount(chunk, minlength=span)
     # exact below 2**53; a level is reported as a float anyway
     values = np.arange(span, dtype=np.float64) + float(lo)
     return counts, values
@@ -162,16 +163,9 @@ def _histogram(image: np.ndarray, low: np.number, high: np.number) -> tuple[np.n
 
 
 def _otsu(counts: np.ndarray, values: np.ndarray) -> float:
-    n = counts.astype(np.float64)
-    w1 = np.cumsum(n)[:-1]
-    s1 = np.cumsum(n * values)[:-1]
-    total, total_sum = n.sum(), float(np.dot(n, values))
-    w2 = total - w1
-    m1 = s1 / w1
-    m2 = (total_sum - s1) / w2
-    between = w1 * w2 * (m1 - m2) ** 2
+    # between-class variance w1 w2 (m1 - m2)^2 of every split, compiled; the
     # first maximum: of equal splits (empty bins between classes) the lowest level
-    return float(values[int(np.argmax(between))])
+    return float(values[_tk.otsu_index(counts, values)])
 
 
 def _li(counts: np.ndarray, values: np.ndarray, width: float) -> float:
@@ -288,7 +282,7 @@ def _compare(image: np.ndarray, level: float | np.ndarray, features: str) -> np.
     version="1",
     values={"level": "-"},
     ndims=(2, 3),
-    libraries=("numpy",),
+    libraries=("numpy", "numba"),
 )
 def threshold(params: ThresholdParams, image: np.ndarray, *, spacing: tuple[float, ...]) -> Output:
     """Turn a gray image into a mask: foreground above (bright) or at/below (dark) a level.
