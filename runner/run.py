@@ -44,7 +44,7 @@ def _refuse_inside_lot(lot: Path, folder: Path, what: str) -> None:
     if real == lot_real or lot_real in real.parents:
         raise WritesIntoLotError(
             f"{folder}: the {what} lies inside the lot folder {lot}; lotproof never writes "
-            f"into a lot (its files would become inputs of the next run): choose a {what} outside it"
+            f"into a lot (its files would become inputs of the next run); choose one outside it"
         )
 
 
