@@ -266,9 +266,9 @@ def warm_up() -> None:
 
 
 # --------------------------------------------------------------------------- compiled code
-# Every kernel returns False when it meets an id outside 0..count (or a pixel
-# outside its box), before writing anywhere it should not: the wrappers turn
-# that into a ValueError.
+# Every kernel that indexes by id returns a failure (False; a nonzero code for
+# _feret) when it meets an id outside 0..count or a pixel outside its object's
+# box, before writing anywhere it should not: the wrappers raise ValueError.
 
 
 @_jit
