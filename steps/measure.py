@@ -328,7 +328,7 @@ def _object_ids(data: np.ndarray, connectivity: int) -> tuple[np.ndarray, np.nda
     version="2",
     values=MEASURE_VALUES,
     ndims=(2, 3),
-    libraries=("numpy", "scipy", "skimage"),
+    libraries=("numpy", "scipy", "skimage", "numba"),
     definitions=VALUE_DEFINITIONS,
     columns={
         **{name: (unit, COLUMN_DEFINITIONS[name]) for name, unit in OBJECT_COLUMNS.items()},
