@@ -12,6 +12,7 @@ import dataclasses
 import difflib
 import hashlib
 import re
+import stat
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Annotated, Any, Literal
@@ -319,13 +320,25 @@ def load_recipe(path: str | Path) -> Recipe:
     path = Path(path)
     shown = str(path)
     try:
-        size = path.stat().st_size
+        info = path.stat()
+        if path.is_dir():
+            raise IsADirectoryError
+        if not stat.S_ISREG(info.st_mode):
+            raise RecipeError([Problem(shown, 1, 1, "", "not a regular file (a pipe or a device?); "
+                                       "a recipe is a file")])
+        size = info.st_size
         if size > MAX_RECIPE_BYTES:
             raise RecipeError(
                 [Problem(shown, 1, 1, "", f"the file is {size} bytes; a recipe is at most "
                          f"{MAX_RECIPE_BYTES} bytes")]
             )
-        raw = path.read_bytes()
+        with open(path, "rb") as handle:
+            raw = handle.read(MAX_RECIPE_BYTES + 1)  # bounded even if the file grows meanwhile
+        if len(raw) > MAX_RECIPE_BYTES:
+            raise RecipeError(
+                [Problem(shown, 1, 1, "", f"the file is over {MAX_RECIPE_BYTES} bytes; a recipe is "
+                         f"at most {MAX_RECIPE_BYTES} bytes")]
+            )
     except FileNotFoundError:
         raise RecipeError([Problem(shown, 1, 1, "", "no such file")]) from None
     except IsADirectoryError:
@@ -440,6 +453,13 @@ def _check_step(name: str, spec: Any, collector: _Collector) -> StepDef | None:
     kind_name = spec.get("apply")
     if kind_name is None:
         collector.add(path, "missing required key 'apply' (the step kind)")
+        return None
+    if not isinstance(kind_name, str):
+        collector.add(
+            path + ("apply",),
+            f"the step kind is a name such as threshold, got {_describe(kind_name)}; "
+            "`lotproof steps` lists them",
+        )
         return None
     if kind_name not in REGISTRY:
         kinds = sorted(REGISTRY)

@@ -286,7 +286,11 @@ def _parse(raw: Any, table: dict[str, tuple[str, float | None]], cls: type, hint
             {"kind": kind, "unit": repr(unit), "got": repr(raw), "units": ", ".join(table)},
         )
     value = float(number)
-    if not math.isfinite(value) or value <= 0:
+    if not math.isfinite(value):
+        raise PydanticCustomError(
+            "quantity_finite", "must be finite (got {got})", {"got": repr(raw)}
+        )
+    if value <= 0:
         raise PydanticCustomError(
             "quantity_positive", "must be > 0 {unit} (got {got})", {"unit": unit, "got": raw}
         )
