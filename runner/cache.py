@@ -327,8 +327,9 @@ class DiskStore:
                 for array in arrays:
                     if array.size:
                         handle.write(memoryview(array).cast("B"))
-                handle.flush()
-                os.fsync(handle.fileno())
+            # No fsync: the rename makes the entry appear whole to other processes, and an
+            # entry that a power cut left with lost bytes fails its checksum on read and is
+            # recomputed. (The ledger, which is evidence, is fsync'ed line by line.)
             os.replace(tmp, path)
         except BaseException:
             try:

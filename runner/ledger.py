@@ -189,17 +189,33 @@ class LedgerWriter:
 
     def append(self, type: str, /, **fields: Any) -> str:  # noqa: A002 - the event's field name
         """Write one event; return the sha256 hex of its line (the seal so far)."""
+        return self.append_group([(type, fields)])
+
+    def append_group(self, events: list[tuple[str, dict[str, Any]]]) -> str:
+        """Write several events (type, fields) and make them durable with one fsync.
+
+        Either every event of the group is in the record or none is: on a failed write
+        the file is cut back to where the group began. Returns the seal so far.
+        """
         if self._file is None:
             raise LedgerWriteError(f"{self.path}: the ledger is closed")
-        clash = [k for k in _RESERVED if k in fields]
-        if clash:
-            raise ValueError(f"event fields {clash} are set by the ledger itself")
-        if not isinstance(type, str) or not type:
-            raise ValueError(f"an event type is a non-empty text, got {type!r}")
-        event = {"seq": self._seq + 1, "type": type, "prev": self._last, **fields}
-        line = canonical(event)
+        seq, last = self._seq, self._last
+        lines = []
+        for type_, fields in events:
+            clash = [k for k in _RESERVED if k in fields]
+            if clash:
+                raise ValueError(f"event fields {clash} are set by the ledger itself")
+            if not isinstance(type_, str) or not type_:
+                raise ValueError(f"an event type is a non-empty text, got {type_!r}")
+            seq += 1
+            line = canonical({"seq": seq, "type": type_, "prev": last, **fields})
+            last = line_hash(line)
+            lines.append(line)
+        if not lines:
+            return self._seal or GENESIS
+        data = b"".join(line + b"\n" for line in lines)
         try:
-            pending = memoryview(line + b"\n")
+            pending = memoryview(data)
             while pending:
                 written = self._file.write(pending)
                 if not written:
@@ -207,7 +223,7 @@ class LedgerWriter:
                 pending = pending[written:]
             os.fsync(self._file.fileno())
         except OSError as err:
-            # An event that is not known to be on disk is not in the record: cut it off,
+            # Events that are not known to be on disk are not in the record: cut them off,
             # so that a failed run-end never leaves a ledger that verifies as intact.
             try:
                 os.ftruncate(self._file.fileno(), self._size)
@@ -218,9 +234,9 @@ class LedgerWriter:
                 f"{self.path}: cannot write event {self._seq + 1} ({err.strerror}); "
                 "the record is incomplete"
             ) from None
-        self._seq += 1
-        self._size += len(line) + 1
-        self._last = self._seal = line_hash(line)
+        self._seq = seq
+        self._size += len(data)
+        self._last = self._seal = last
         return self._seal
 
     def close(self) -> None:

@@ -129,7 +129,13 @@ def _column_text(column: np.ndarray) -> list[str]:
     """``format_number`` of every cell of a column, in one pass over Python scalars."""
     values = np.asarray(column)
     if values.dtype.kind in "iub":
-        return [str(int(v)) for v in values.tolist()]
+        return [str(v) for v in values.astype(np.int64).tolist()]
+    if values.dtype.kind == "f" and bool(np.isfinite(values).all()):
+        # the common case, inlined: whole numbers without ".0", others by repr (shortest exact)
+        return [
+            str(int(v)) if v.is_integer() and -1e15 < v < 1e15 else repr(v)
+            for v in values.astype(np.float64).tolist()
+        ]
     return [format_number(v) for v in values.tolist()]
 
 
@@ -298,15 +304,17 @@ def _write_kept(run: Path, results: list[ImageResult]) -> list[str]:
 
 
 def write_previews(run: Path, result: ImageResult) -> list[str]:
-    """``figures/IMAGE.thumbnail.png`` and ``figures/IMAGE.overlay.png`` of one image."""
-    from PIL import Image
+    """``figures/IMAGE.thumbnail.png`` and ``figures/IMAGE.overlay.png`` of one image.
+
+    ``result.preview`` holds PNG bytes (encoded by the worker) or display arrays.
+    """
+    from runner.figures import png_bytes
 
     written = []
-    for name, array in sorted(result.preview.items()):
-        buffer = io.BytesIO()
-        Image.fromarray(array).save(buffer, format="PNG", optimize=False)
+    for name, item in sorted(result.preview.items()):
+        data = item if isinstance(item, bytes) else png_bytes(item)
         path = run / "figures" / f"{_kept_name(result.id).replace('/', '__')}.{name}.png"
-        write_bytes(path, buffer.getvalue())
+        write_bytes(path, data)
         written.append(path.relative_to(run).as_posix())
     return written
 

@@ -117,22 +117,25 @@ def exit_code_for(verdicts: Verdicts) -> int:
 
 
 def _image_events(ledger: LedgerWriter, recipe: Recipe, result: ImageResult) -> None:
+    """One image's events (inputs, steps, the image), made durable together."""
+    events: list[tuple[str, dict[str, Any]]] = []
     for item in result.inputs:
-        ledger.append(
-            "input", image=result.id, input=item["input"], path=item["path"], size=item["size"],
-            sha256=item["sha256"], shape=item["shape"], dtype=item["dtype"],
-            calibration=item["calibration"],
-        )
+        events.append(("input", {
+            "image": result.id, "input": item["input"], "path": item["path"], "size": item["size"],
+            "sha256": item["sha256"], "shape": item["shape"], "dtype": item["dtype"],
+            "calibration": item["calibration"],
+        }))
     for record in result.steps:
-        ledger.append(
-            "step", image=result.id, step=record.step, kind=record.kind, version=record.version,
-            to=list(recipe.steps[record.step].to), key=record.key, checksum=record.checksum,
-            cache=record.cache, seconds=round(record.seconds, 6),
-        )
-    ledger.append(
-        "image", image=result.id, status=result.status, reason=result.reason, worker=result.worker,
-        notes=list(result.notes),
-    )
+        events.append(("step", {
+            "image": result.id, "step": record.step, "kind": record.kind, "version": record.version,
+            "to": list(recipe.steps[record.step].to), "key": record.key, "checksum": record.checksum,
+            "cache": record.cache, "seconds": round(record.seconds, 6),
+        }))
+    events.append(("image", {
+        "image": result.id, "status": result.status, "reason": result.reason,
+        "worker": result.worker, "notes": list(result.notes),
+    }))
+    ledger.append_group(events)
 
 
 def run_lot(
