@@ -304,6 +304,11 @@ def analyse_sample(
     except _StepFailed as err:
         result.steps = [records[n] for n in recipe.order if n in records]
         return result.fail(str(err))
+    finally:
+        # `get` refers to itself through its closure: a reference cycle that would keep
+        # every intermediate of this image alive until the cyclic collector runs. Drop
+        # the data now, so memory holds one image's intermediates at a time.
+        data.clear()
     for name in recipe.order:
         if name not in records:
             step = recipe.steps[name]

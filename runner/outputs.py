@@ -184,8 +184,7 @@ def _images_csv(recipe: Recipe, results: list[ImageResult], verdicts: Verdicts) 
     return _csv(rows)
 
 
-def _tables_csv(recipe: Recipe, results: list[ImageResult], *, per_object: bool) -> bytes:
-    """Rows of every table-giving step: ``objects.csv`` (per-object tables) or ``tables.csv``."""
+def _table_columns(results: list[ImageResult], per_object: bool) -> list[tuple[str, str]]:
     columns: list[tuple[str, str]] = []
     for r in results:
         for table in r.tables.values():
@@ -195,20 +194,43 @@ def _tables_csv(recipe: Recipe, results: list[ImageResult], *, per_object: bool)
                 entry = (name, table.units[name])
                 if entry not in columns:
                     columns.append(entry)
-    header = ["image", "step"] + [_header(n, u) for n, u in columns]
-    rows = [header]
-    for r in results:
-        for step_name in recipe.order:
-            table = r.tables.get(step_name)
-            if table is None or table.per_object != per_object:
-                continue
-            cells = [
-                _column_text(table.columns[n]) if n in table.columns else [""] * table.n_rows
-                for n, _ in columns
-            ]
-            prefix = [r.id, step_name]
-            rows.extend(prefix + list(row) for row in zip(*cells, strict=True))
-    return _csv(rows)
+    return columns
+
+
+def _write_tables_csv(path: Path, recipe: Recipe, results: list[ImageResult], *, per_object: bool) -> None:
+    """Rows of every table-giving step: ``objects.csv`` (per-object tables) or ``tables.csv``.
+
+    Written image by image to a temporary file, then renamed: memory stays at one
+    image's rows however many objects the lot has.
+    """
+    columns = _table_columns(results, per_object)
+    if path.exists():
+        raise RunFolderError(f"{path}: exists already; run files are never overwritten")
+    fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as handle:
+            writer = csv.writer(handle, lineterminator="\n")
+            writer.writerow(["image", "step"] + [_header(n, u) for n, u in columns])
+            for r in results:
+                for step_name in recipe.order:
+                    table = r.tables.get(step_name)
+                    if table is None or table.per_object != per_object:
+                        continue
+                    cells = [
+                        _column_text(table.columns[n]) if n in table.columns else [""] * table.n_rows
+                        for n, _ in columns
+                    ]
+                    prefix = [r.id, step_name]
+                    writer.writerows(prefix + list(row) for row in zip(*cells, strict=True))
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(tmp, path)
+    except OSError as err:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise RunFolderError(f"{path}: cannot write ({err.strerror})") from None
 
 
 def _steps_csv(results: list[ImageResult]) -> bytes:
@@ -343,10 +365,10 @@ def write_run_files(
     resolved["lot"] = str(lot)
     write_bytes(run / "resolved.json", _json(resolved))
     write_bytes(run / "images.csv", _images_csv(recipe, results, verdicts))
-    write_bytes(run / "objects.csv", _tables_csv(recipe, results, per_object=True))
+    _write_tables_csv(run / "objects.csv", recipe, results, per_object=True)
     extra = [r for r in results for t in r.tables.values() if not t.per_object]
     if extra:
-        write_bytes(run / "tables.csv", _tables_csv(recipe, results, per_object=False))
+        _write_tables_csv(run / "tables.csv", recipe, results, per_object=False)
     write_bytes(run / "steps.csv", _steps_csv(results))
     inputs = {r.id: r.inputs for r in results}
     write_bytes(run / "inputs.json", _json(inputs))

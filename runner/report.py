@@ -157,6 +157,28 @@ def _to_float(text: str) -> float | None:
         return None
 
 
+def _read_sizes(path: Path, files: RunFiles) -> None:
+    """The size column of objects.csv, read row by row (a lot can have millions of objects)."""
+    try:
+        handle = path.open(encoding="utf-8", newline="")
+    except FileNotFoundError:
+        return
+    except OSError as err:
+        raise ReportError(f"{path}: cannot be read ({err.strerror})") from None
+    with handle:
+        reader = csv.reader(handle)
+        header = next(reader, [])
+        column = next((c for c in _SIZE_COLUMNS if c in header), "")
+        if not column or "step" not in header:
+            return
+        at, step_at = header.index(column), header.index("step")
+        for row in reader:
+            value = _to_float(row[at]) if at < len(row) else None
+            if value is not None and math.isfinite(value):
+                files.sizes.setdefault(row[step_at], []).append(value)
+        files.size_column = column
+
+
 def read_run_files(run_dir: Path, ledger_events: list[dict[str, Any]] | None = None) -> RunFiles:
     """Read what the report shows from ``run_dir``; ``ledger_events`` replaces the ledger file.
 
@@ -172,15 +194,7 @@ def read_run_files(run_dir: Path, ledger_events: list[dict[str, Any]] | None = N
     header, rows = _read_csv(run_dir / "images.csv")
     files.image_header = header
     files.image_rows = [dict(zip(header, row, strict=False)) for row in rows]
-    obj_header, obj_rows = _read_csv(run_dir / "objects.csv")
-    column = next((c for c in _SIZE_COLUMNS if c in obj_header), "")
-    if column and "step" in obj_header:
-        at, step_at = obj_header.index(column), obj_header.index("step")
-        for row in obj_rows:
-            value = _to_float(row[at]) if at < len(row) else None
-            if value is not None and math.isfinite(value):
-                files.sizes.setdefault(row[step_at], []).append(value)
-        files.size_column = column
+    _read_sizes(run_dir / "objects.csv", files)
     files.events = list(ledger_events) if ledger_events is not None else _ledger_lines(run_dir / LEDGER_FILE)
     ids = list(files.verdicts.get("image_verdicts", {}))
     for image_id in ids:
