@@ -131,7 +131,7 @@ def skimage_script(image: np.ndarray) -> None:
 
     level = morphology.black_tophat(image, morphology.disk(25))
     pores = level > filters.threshold_otsu(level)
-    clean = morphology.binary_opening(pores, morphology.disk(2))
+    clean = morphology.opening(pores, morphology.disk(2))
     labels = measure.label(clean)
     measure.regionprops_table(labels, properties=("area", "equivalent_diameter_area", "centroid",
                                                   "perimeter_crofton", "euler_number"))
@@ -205,9 +205,12 @@ def main() -> None:
                         partial_s <= bound))
 
         one = timed(run_lot, recipe, lot, work / "runs", jobs=1)
+        two_first = timed(run_lot, recipe, lot, work / "runs", jobs=2)
         two = timed(run_lot, recipe, lot, work / "runs", jobs=2)
         figures.append(("5 --jobs 2 throughput / --jobs 1", f"{one / two:.2f}x ({two:.2f} s vs {one:.2f} s)",
                         ">= 1.7x", one / two >= 1.7))
+        figures.append(("5 the same, first pool of the process", f"{one / two_first:.2f}x ({two_first:.2f} s)",
+                        "reported", None))
 
         small = make_lot(work / "lot8", 8, side)
         big = make_lot(work / "lot64", 64, side)
