@@ -112,7 +112,8 @@ def check(recipe: Path, as_json: bool) -> None:
     console = _out()
     console.print(Text(f"{checked.path}: {checked.label} — {checked.summary}", style="bold"))
     pixel = "from each image's calibration" if checked.size_from_image else checked.size_text
-    console.print(f"pixel size: {pixel}")
+    what = "voxel size (x, y, z)" if getattr(checked, "voxel_size", None) else "pixel size"
+    console.print(f"{what}: {pixel}")
     graph = RichTable(title="step graph, in run order", title_justify="left")
     for column in ("#", "step", "apply", "to", "gives", "parameters"):
         graph.add_column(column)
