@@ -11,7 +11,7 @@ Usage::
     python demo_run/generate.py [OUT_DIR]
 
 writes ``FD-2611-01.tif`` ... ``FD-2611-08.tif`` into ``OUT_DIR`` (default:
-``demo_run/lot`` beside this file) and the ground truth ``lot-truth.json`` into
+``demo_run/FD-2611`` beside this file) and the ground truth ``lot-truth.json`` into
 the parent folder of ``OUT_DIR``, so that the lot folder holds images only.
 
 How an image is made, in order (all levels are counts of the stored image):
@@ -468,7 +468,7 @@ def main(argv: list[str] | None = None) -> int:
     if len(args) > 1 or (args and args[0].startswith("-")):
         print("usage: python demo_run/generate.py [OUT_DIR]", file=sys.stderr)
         return 2
-    out = Path(args[0]) if args else Path(__file__).resolve().parent / "lot"
+    out = Path(args[0]) if args else Path(__file__).resolve().parent / LOT
     truth = generate(out)
     (out.resolve().parent / TRUTH_FILE).write_text(truth_json(truth), encoding="utf-8")
     return 0

@@ -4,7 +4,7 @@ Every command has a function behind it, for notebooks and scripts::
 
     from runner import load_recipe, run_lot
     recipe = load_recipe("recipes/filter-disc-porosity.yaml")
-    summary = run_lot(recipe, "demo_run/lot", "runs")
+    summary = run_lot(recipe, "demo_run/FD-2611", "runs")
     summary.verdicts.lot          # 'pass' | 'fail' | 'incomplete'
 """
 

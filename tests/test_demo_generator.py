@@ -15,7 +15,7 @@ import tifffile
 from scipy import ndimage
 
 DEMO = Path(__file__).resolve().parents[1] / "demo_run"
-LOT_DIR = DEMO / "lot"
+LOT_DIR = DEMO / "FD-2611"
 TRUTH_PATH = DEMO / "lot-truth.json"
 
 # Pinned on purpose: changing the generator or its output is a decision that

@@ -35,7 +35,7 @@ from steps import REGISTRY, StepParams, step  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO_RECIPE = ROOT / "recipes" / "filter-disc-porosity.yaml"
-DEMO_LOT = ROOT / "demo_run" / "lot"
+DEMO_LOT = ROOT / "demo_run" / "FD-2611"
 
 PROBE = "fault-probe"
 PROBE_MODES = ("once", "always")

@@ -200,7 +200,7 @@ def test_interrupted_run_is_unfinished(tmp_path: Path, monkeypatch: pytest.Monke
 
 def test_rerun_of_the_demo_run_is_identical(tmp_path: Path) -> None:
     root = Path(__file__).resolve().parent.parent
-    recorded = run_lot(root / "recipes" / "filter-disc-porosity.yaml", root / "demo_run" / "lot",
+    recorded = run_lot(root / "recipes" / "filter-disc-porosity.yaml", root / "demo_run" / "FD-2611",
                        tmp_path / "runs", jobs=2)
     report = rerun(recorded.run_dir, out=tmp_path / "reruns")
     assert report.identical, report.first_per_image()

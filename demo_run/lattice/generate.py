@@ -37,6 +37,8 @@ NOISE = 2.0
 SEED = 2612
 
 #: per coupon: number of voids and their radius range (um); coupon 04 has more, larger voids
+#: the lot number, also the name of the lot folder
+LOT = "LC-2612"
 COUPONS = {
     "LC-2612-01": (14, (5.0, 8.0)),
     "LC-2612-02": (10, (5.0, 8.5)),
@@ -156,7 +158,7 @@ def make_coupon(name: str, index: int) -> tuple[np.ndarray, dict]:
 
 
 def write_lot(out: Path) -> dict:
-    lot = out / "lot"
+    lot = out / LOT
     lot.mkdir(parents=True, exist_ok=True)
     images = []
     for index, name in enumerate(COUPONS, start=1):
@@ -176,7 +178,7 @@ def write_lot(out: Path) -> dict:
         truth["sha256"] = hashlib.sha256(path.read_bytes()).hexdigest()
         images.append(truth)
     summary = {
-        "lot": "LC-2612",
+        "lot": LOT,
         "synthetic": True,
         "shape_zyx": list(SHAPE),
         "voxel_size_um_zyx": list(VOXEL_UM),

@@ -13,7 +13,7 @@ Usage::
     python demo_run/powder/generate.py [OUT_DIR]
 
 writes ``PW-2612-01.tif`` ... ``PW-2612-06.tif`` into ``OUT_DIR`` (default:
-``demo_run/powder/lot`` beside this file) and the ground truth ``lot-truth.json``
+``demo_run/powder/PW-2612`` beside this file) and the ground truth ``lot-truth.json``
 into the parent folder of ``OUT_DIR``, so that the lot folder holds images only.
 
 How an image is made, in order (levels are counts of the stored 8-bit image):
@@ -488,7 +488,7 @@ def main(argv: list[str] | None = None) -> int:
     if len(args) > 1 or (args and args[0].startswith("-")):
         print("usage: python demo_run/powder/generate.py [OUT_DIR]", file=sys.stderr)
         return 2
-    out = Path(args[0]) if args else Path(__file__).resolve().parent / "lot"
+    out = Path(args[0]) if args else Path(__file__).resolve().parent / LOT
     truth = generate(out)
     (out.resolve().parent / TRUTH_FILE).write_text(truth_json(truth), encoding="utf-8")
     return 0

@@ -16,7 +16,7 @@ from runner import load_recipe, run_lot
 
 ROOT = Path(__file__).resolve().parents[2]
 RECIPE = ROOT / "recipes" / "filter-disc-porosity.yaml"
-LOT = ROOT / "demo_run" / "lot"
+LOT = ROOT / "demo_run" / "FD-2611"
 TRUTH = json.loads((ROOT / "demo_run" / "lot-truth.json").read_text())
 EXAMPLE = ROOT / "demo_run" / "example-run"
 

@@ -16,7 +16,7 @@ from runner import load_recipe, run_lot
 
 ROOT = Path(__file__).resolve().parents[2]
 RECIPE = ROOT / "recipes" / "lattice-voids.yaml"
-LOT = ROOT / "demo_run" / "lattice" / "lot"
+LOT = ROOT / "demo_run" / "lattice" / "LC-2612"
 TRUTH = json.loads((ROOT / "demo_run" / "lattice" / "lot-truth.json").read_text())
 
 #: void content of the material within 10 % (relative) of the truth: blur and threshold move

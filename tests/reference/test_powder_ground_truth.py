@@ -22,7 +22,7 @@ from runner.demo import SCENARIOS, demo_paths
 ROOT = Path(__file__).resolve().parents[2]
 DEMO = ROOT / "demo_run" / "powder"
 RECIPE = ROOT / "recipes" / "powder-size.yaml"
-LOT = DEMO / "lot"
+LOT = DEMO / "PW-2612"
 TRUTH = json.loads((DEMO / "lot-truth.json").read_text())
 
 # Pinned on purpose: changing the generator or its output is a decision that updates
