@@ -26,7 +26,7 @@ import numpy as np
 import pytest
 import tifffile
 
-from runner import load_recipe, run_lot
+from runner import run_lot
 from runner.cli import main
 from runner.errors import EXIT_BAD_INPUT, InputError
 from runner.inputs import MAX_PIXELS, MIN_SIDE, read_image

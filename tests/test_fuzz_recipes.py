@@ -21,7 +21,6 @@ from hypothesis import strategies as st
 
 from runner.errors import RecipeError
 from runner.recipe import Recipe, parse_recipe
-from runner.yamlpos import load_yaml
 
 VALID = """\
 format: lotproof/1
