@@ -46,15 +46,24 @@ __all__ = [
     "dilate_reference",
     "chords",
     "METHODS",
+    "STENCIL_MAX_PIXELS",
     "choose_method",
 ]
 
 #: Kernels :func:`erode` and :func:`dilate` can be told to use: ``auto`` picks
 #: by footprint (:func:`choose_method`); ``numba-box`` (separable, full boxes
-#: only) and ``numba-chords`` are compiled; ``scipy-chords`` is the same chord
-#: decomposition by ``scipy.ndimage.minimum_filter1d``; ``reference`` is the
-#: plain definition.
-METHODS: tuple[str, ...] = ("auto", "numba-box", "numba-chords", "scipy-chords", "reference")
+#: only), ``numba-chords`` and ``numba-stencil`` (2-D only: one fused pass over
+#: the footprint's offsets, for small footprints) are compiled;
+#: ``scipy-chords`` is the same chord decomposition by
+#: ``scipy.ndimage.minimum_filter1d``; ``reference`` is the plain definition.
+METHODS: tuple[str, ...] = (
+    "auto", "numba-box", "numba-chords", "numba-stencil", "scipy-chords", "reference"
+)
+
+#: ``auto`` uses ``numba-stencil`` for a 2-D footprint of at most this many
+#: pixels (chosen from ``bench/bench_kernels.py``: below it the fused pass is
+#: faster than the chord and box kernels, above it slower).
+STENCIL_MAX_PIXELS = 15
 
 #: The dtypes the kernels accept; each one's extreme values are exact as a
 #: float64, which scipy's ``cval`` passes through.
@@ -362,6 +371,30 @@ def _numba(
     return _restore(out, image.dtype)
 
 
+def _stencil(image: np.ndarray, footprint: np.ndarray, operation: str) -> np.ndarray:
+    """The fused one-pass kernel :func:`steps._morph_numba.stencil_kernel` (2-D only)."""
+    from steps import _morph_numba as nb
+
+    if image.ndim != 2:
+        raise ValueError("method 'numba-stencil' works on 2-D data only")
+    work = np.ascontiguousarray(image)
+    if work.dtype == np.bool_:
+        work = work.view(np.uint8)
+    cval = work.dtype.type(_cval(image.dtype, operation))
+    offsets = _offsets(footprint)
+    out = np.empty(work.shape, dtype=work.dtype)
+    nb.stencil_kernel(
+        work,
+        np.ascontiguousarray(offsets[:, 0]),
+        np.ascontiguousarray(offsets[:, 1]),
+        0 if operation == "erode" else 1,
+        cval,
+        work.dtype.kind == "f",
+        out,
+    )
+    return _restore(out, image.dtype)
+
+
 #: Bytes of first-level data cache the chord kernel aims to stay within.
 _CACHE_BYTES = 256 * 1024
 
@@ -389,10 +422,17 @@ def choose_method(image: np.ndarray, footprint: np.ndarray) -> str:
     -------
     str
         ``"numba-box"`` for a full box (square, rectangle, cube, axis-aligned
-        line), ``"numba-chords"`` for every other footprint. Both are the
-        fastest measured on every case of ``bench/bench_kernels.py``.
+        line); ``"numba-stencil"`` for any other 2-D footprint of at most
+        :data:`STENCIL_MAX_PIXELS` pixels (one or two fused passes per row);
+        ``"numba-chords"`` for every other footprint. Each is the fastest
+        measured on the cases of ``bench/bench_kernels.py`` it is chosen for.
     """
-    return "numba-box" if np.asarray(footprint).all() else "numba-chords"
+    fp = np.asarray(footprint)
+    if fp.all():
+        return "numba-box"
+    if fp.ndim == 2 and int(fp.sum()) <= STENCIL_MAX_PIXELS:
+        return "numba-stencil"
+    return "numba-chords"
 
 
 def _dispatch(image: np.ndarray, footprint: np.ndarray, operation: str, method: str) -> np.ndarray:
@@ -408,6 +448,8 @@ def _dispatch(image: np.ndarray, footprint: np.ndarray, operation: str, method: 
         return _fast(image, footprint, operation)
     if method == "numba-chords":
         return _numba(image, footprint, operation, box=False)
+    if method == "numba-stencil":
+        return _stencil(image, footprint, operation)
     if method == "numba-box":
         if not footprint.all():
             raise ValueError("method 'numba-box' needs a footprint that is a full box")
@@ -436,8 +478,9 @@ def erode(image: np.ndarray, footprint: np.ndarray, *, method: str = "auto") -> 
     Notes
     -----
     Full boxes are separable: a running minimum along the rows, then along
-    the columns (and planes) by the van Herk / Gil-Werman algorithm. Other
-    footprints are decomposed into chords along the last axis (a running
+    the columns (and planes) by the van Herk / Gil-Werman algorithm. Small 2-D
+    footprints are one fused pass per row: each output pixel is the minimum
+    of the input pixels at the footprint's offsets. Other footprints are decomposed into chords along the last axis (a running
     minimum per distinct chord length, shifted into place for each chord),
     the chord method of Urbach & Wilkinson. Every method gives the same bits.
 

@@ -97,7 +97,9 @@ def _case(draw, ndim: int):
 
 
 def _methods(fp: np.ndarray) -> tuple[str, ...]:
-    return FORCED if fp.all() else tuple(m for m in FORCED if m != "numba-box")
+    methods = FORCED if fp.all() else tuple(m for m in FORCED if m != "numba-box")
+    # the fused stencil is 2-D only
+    return methods if fp.ndim == 2 else tuple(m for m in methods if m != "numba-stencil")
 
 
 def _assert_every_method_exact(image: np.ndarray, fp: np.ndarray) -> None:
@@ -133,6 +135,65 @@ def test_chord_kernel_in_column_strips_equals_reference(case, strip):
         assert got.tobytes() == slow(image, fp).tobytes()
 
 
+@st.composite
+def _small_footprint(draw):
+    """Any footprint within 9x9 holding its centre: sparse, lopsided, one-sided, full."""
+    sides = (2 * draw(st.integers(0, 4)) + 1, 2 * draw(st.integers(0, 4)) + 1)
+    fp = draw(hnp.arrays(np.bool_, sides))
+    shape = draw(st.sampled_from(["any", "left", "top", "corner", "full"]))
+    cy, cx = sides[0] // 2, sides[1] // 2
+    if shape == "left":
+        fp[:, cx + 1 :] = False  # nothing right of the centre
+    elif shape == "top":
+        fp[cy + 1 :, :] = False
+    elif shape == "corner":
+        fp[:cy, :] = False
+        fp[:, :cx] = False
+    elif shape == "full":
+        fp[:] = True
+    fp[cy, cx] = True
+    return fp
+
+
+@given(
+    st.sampled_from(DTYPES).flatmap(
+        lambda d: hnp.arrays(
+            d, st.tuples(st.integers(1, 20), st.integers(1, 20)), elements=_elements(d)
+        )
+    ),
+    _small_footprint(),
+)
+@settings(max_examples=300, deadline=None)
+def test_stencil_kernel_equals_reference(image, fp):
+    # images smaller than the footprint included (sides from 1 pixel)
+    for fast, slow in OPERATIONS:
+        got = fast(image, fp, method="numba-stencil")
+        # source: the plain definition (min / max over the offsets inside the image)
+        assert got.dtype == image.dtype and got.shape == image.shape
+        assert got.tobytes() == slow(image, fp).tobytes(), (fast.__name__, fp.shape)
+
+
+def test_stencil_kernel_more_offsets_than_one_pass():
+    # 1, 8, 9, 15, 16, 22 and 49 offsets: one pass, exactly full passes, partial last passes
+    rng = np.random.default_rng(14)
+    image = rng.integers(0, 255, size=(23, 31), dtype=np.uint8, endpoint=True)
+    for count in (1, 8, 9, 15, 16, 22, 49):
+        fp = np.zeros(49, dtype=bool)
+        fp[24] = True
+        others = rng.permutation(np.delete(np.arange(49), 24))[: count - 1]
+        fp[others] = True
+        fp = fp.reshape(7, 7)
+        assert int(fp.sum()) == count
+        for fast, slow in OPERATIONS:
+            # source: the plain definition (min / max over the offsets inside the image)
+            assert fast(image, fp, method="numba-stencil").tobytes() == slow(image, fp).tobytes()
+
+
+def test_stencil_kernel_refuses_volumes():
+    with pytest.raises(ValueError, match="2-D data only"):
+        _morph.erode(np.zeros((3, 3, 3), dtype=np.uint8), fps.ball(1.0), method="numba-stencil")
+
+
 @pytest.mark.parametrize("dtype", DTYPES, ids=str)
 @pytest.mark.parametrize(
     "fp",
@@ -165,7 +226,7 @@ def test_tiny_literal_cross():
     eroded = np.array([[1, 1, 1], [3, 1, 2], [3, 4, 2]], dtype=np.uint8)
     # source: closed form, max over the 3x3 cross by hand, outside pixels ignored
     dilated = np.array([[5, 9, 7], [9, 9, 9], [8, 9, 6]], dtype=np.uint8)
-    for method in FORCED[:1] + ("numba-chords", "scipy-chords"):
+    for method in FORCED[:1] + ("numba-chords", "numba-stencil", "scipy-chords"):
         assert np.array_equal(_morph.erode(image, fps.disk(1.0), method=method), eroded)
         assert np.array_equal(_morph.dilate(image, fps.disk(1.0), method=method), dilated)
 
@@ -180,7 +241,7 @@ def test_tiny_literal_box_at_the_frame():
 
 def test_negative_zero_becomes_positive_zero():
     image = np.array([[-0.0, 1.0, -0.0], [2.0, -0.0, 3.0]], dtype=np.float32)
-    for method in ("numba-chords", "numba-box", "scipy-chords"):
+    for method in ("numba-chords", "numba-box", "numba-stencil", "scipy-chords"):
         got = _morph.erode(image, np.ones((1, 1), dtype=bool), method=method)
         # source: common practice, no source (-0.0 is read as +0.0 by the border rule's docs)
         assert not np.signbit(got).any(), method
@@ -204,7 +265,9 @@ def test_choose_method():
     image = np.zeros((8, 8), dtype=np.uint8)
     assert _morph.choose_method(image, fps.square(5.0)) == "numba-box"
     assert _morph.choose_method(image, fps.rectangle(9.0, 1.0)) == "numba-box"
-    assert _morph.choose_method(image, fps.disk(3.0)) == "numba-chords"
+    assert _morph.choose_method(image, fps.disk(1.0)) == "numba-stencil"
+    assert _morph.choose_method(image, fps.disk(2.0)) == "numba-stencil"  # 13 pixels
+    assert _morph.choose_method(image, fps.disk(3.0)) == "numba-chords"  # 29 pixels
     assert _morph.choose_method(image[None], fps.cube(3.0)) == "numba-box"
     assert _morph.choose_method(image[None], fps.ball(2.0)) == "numba-chords"
 
