@@ -97,9 +97,11 @@ def _case(draw, ndim: int):
 
 
 def _methods(fp: np.ndarray) -> tuple[str, ...]:
-    methods = FORCED if fp.all() else tuple(m for m in FORCED if m != "numba-box")
-    # the fused stencil is 2-D only
-    return methods if fp.ndim == 2 else tuple(m for m in methods if m != "numba-stencil")
+    boxes = ("numba-box", "numba-box-fused")
+    methods = FORCED if fp.all() else tuple(m for m in FORCED if m not in boxes)
+    # the fused kernels are 2-D only
+    flat = ("numba-stencil", "numba-box-fused")
+    return methods if fp.ndim == 2 else tuple(m for m in methods if m not in flat)
 
 
 def _assert_every_method_exact(image: np.ndarray, fp: np.ndarray) -> None:
@@ -189,9 +191,31 @@ def test_stencil_kernel_more_offsets_than_one_pass():
             assert fast(image, fp, method="numba-stencil").tobytes() == slow(image, fp).tobytes()
 
 
-def test_stencil_kernel_refuses_volumes():
+@given(
+    st.sampled_from(DTYPES).flatmap(
+        lambda d: hnp.arrays(
+            d, st.tuples(st.integers(1, 24), st.integers(1, 24)), elements=_elements(d)
+        )
+    ),
+    st.integers(0, 6),
+    st.integers(0, 6),
+)
+@settings(max_examples=200, deadline=None)
+def test_fused_box_kernel_equals_reference(image, half_width, half_height):
+    # boxes up to 13x13, rectangles and lines included, images smaller than the box included
+    fp = np.ones((2 * half_height + 1, 2 * half_width + 1), dtype=bool)
+    for fast, slow in OPERATIONS:
+        got = fast(image, fp, method="numba-box-fused")
+        # source: the plain definition (min / max over the offsets inside the image)
+        assert got.dtype == image.dtype and got.shape == image.shape
+        assert got.tobytes() == slow(image, fp).tobytes(), (fast.__name__, fp.shape)
+
+
+def test_fused_kernels_refuse_volumes():
     with pytest.raises(ValueError, match="2-D data only"):
         _morph.erode(np.zeros((3, 3, 3), dtype=np.uint8), fps.ball(1.0), method="numba-stencil")
+    with pytest.raises(ValueError, match="2-D data only"):
+        _morph.erode(np.zeros((3, 3, 3), dtype=np.uint8), fps.cube(3.0), method="numba-box-fused")
 
 
 @pytest.mark.parametrize("dtype", DTYPES, ids=str)
@@ -235,13 +259,14 @@ def test_tiny_literal_box_at_the_frame():
     image = np.array([[4, 8, 2, 9], [7, 1, 6, 3]], dtype=np.uint16)
     # source: closed form, min over the 3x3 box by hand, outside pixels ignored
     eroded = np.array([[1, 1, 1, 2], [1, 1, 1, 2]], dtype=np.uint16)
-    got = _morph.erode(image, fps.square(3.0), method="numba-box")
-    assert np.array_equal(got, eroded)
+    for method in ("numba-box", "numba-box-fused", "numba-stencil"):
+        got = _morph.erode(image, fps.square(3.0), method=method)
+        assert np.array_equal(got, eroded), method
 
 
 def test_negative_zero_becomes_positive_zero():
     image = np.array([[-0.0, 1.0, -0.0], [2.0, -0.0, 3.0]], dtype=np.float32)
-    for method in ("numba-chords", "numba-box", "numba-stencil", "scipy-chords"):
+    for method in ("numba-chords", "numba-box", "numba-box-fused", "numba-stencil", "scipy-chords"):
         got = _morph.erode(image, np.ones((1, 1), dtype=bool), method=method)
         # source: common practice, no source (-0.0 is read as +0.0 by the border rule's docs)
         assert not np.signbit(got).any(), method
@@ -254,7 +279,7 @@ def test_strided_input_is_handled():
     view = base[::2, ::3].T  # neither C- nor F-contiguous
     fp = fps.disk(2.5)
     for method in FORCED:
-        if method == "numba-box":
+        if method in ("numba-box", "numba-box-fused"):
             continue
         got = _morph.erode(view, fp, method=method)
         # source: the plain definition on the same strided data
@@ -263,7 +288,10 @@ def test_strided_input_is_handled():
 
 def test_choose_method():
     image = np.zeros((8, 8), dtype=np.uint8)
-    assert _morph.choose_method(image, fps.square(5.0)) == "numba-box"
+    assert _morph.choose_method(image, fps.square(3.0)) == "numba-box"
+    assert _morph.choose_method(image, fps.square(5.0)) == "numba-box-fused"
+    assert _morph.choose_method(image, fps.square(7.0)) == "numba-box-fused"
+    assert _morph.choose_method(image, fps.square(9.0)) == "numba-box"
     assert _morph.choose_method(image, fps.rectangle(9.0, 1.0)) == "numba-box"
     assert _morph.choose_method(image, fps.disk(1.0)) == "numba-stencil"
     assert _morph.choose_method(image, fps.disk(2.0)) == "numba-stencil"  # 13 pixels
@@ -278,6 +306,8 @@ def test_bad_method_is_refused():
         _morph.erode(image, fps.disk(1.0), method="fastest")
     with pytest.raises(ValueError, match="needs a footprint that is a full box"):
         _morph.dilate(image, fps.disk(1.0), method="numba-box")
+    with pytest.raises(ValueError, match="needs a footprint that is a full box"):
+        _morph.dilate(image, fps.disk(1.0), method="numba-box-fused")
 
 
 def test_result_is_a_new_array():
