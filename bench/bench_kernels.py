@@ -236,7 +236,7 @@ def bench_first_call() -> None:
         ).stdout.split()
     print(f"  import numba + kernels module: {float(warm[0]) * 1e3:.0f} ms")
     print(f"  warm_up(), compiled code loaded from the on-disk cache: {float(warm[1]) * 1e3:.0f} ms")
-    print(f"  warm_up(), empty cache (compiles 7 dtypes x 2 kernels): {float(cold[1]):.1f} s")
+    print(f"  warm_up(), empty cache (compiles 7 dtypes x 4 kernels): {float(cold[1]):.1f} s")
 
 
 def bench_gray(quick: bool) -> None:
