@@ -27,7 +27,7 @@ from runner.errors import (
     LotproofError,
     RecipeError,
 )
-from runner.limits import FAIL, INCOMPLETE, PASS
+from runner.limits import FAIL, INCOMPLETE, PASS, bound_text
 from runner.outputs import CAUTION
 
 __all__ = ["main", "cli"]
@@ -139,13 +139,7 @@ def check(recipe: Path, as_json: bool) -> None:
         for column in ("limit", "value", "unit", "over", "bound (inclusive)"):
             limits.add_column(column)
         for name, lim in checked.limits.items():
-            unit = "" if lim.unit == "-" else f" {lim.unit}"
-            if lim.low is not None and lim.high is not None:
-                bound = f"{lim.low:g} to {lim.high:g}{unit}"
-            elif lim.low is not None:
-                bound = f">= {lim.low:g}{unit}"
-            else:
-                bound = f"<= {lim.high:g}{unit}"
+            bound = bound_text(lim.low, lim.high, lim.unit)
             limits.add_row(name, f"{lim.step}.{lim.value}", lim.unit, lim.over, bound)
         console.print(limits)
     n_kinds = len({s.kind for s in checked.steps.values()})

@@ -284,7 +284,8 @@ def analyse_sample(
         data[name] = out
         return out
 
-    wanted = _targets(recipe) + [n for n in capture if n in recipe.order and n not in _targets(recipe)]
+    targets = _targets(recipe)
+    wanted = targets + [n for n in capture if n in recipe.order and n not in targets]
     try:
         for name in wanted:
             out = get(name)

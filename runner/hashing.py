@@ -21,6 +21,7 @@ import hashlib
 from collections.abc import Iterable, Mapping
 from functools import lru_cache
 from importlib import metadata
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -31,6 +32,7 @@ from steps import Output, StepParams, Table
 __all__ = [
     "KEY_FORMAT",
     "canonical_json",
+    "file_sha256",
     "hash_array",
     "content_checksum",
     "float_text",
@@ -50,6 +52,15 @@ def canonical_json(obj: Any) -> bytes:
 
 def _sha256(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()
+
+
+def file_sha256(path: Path) -> str:
+    """sha256 hex of a file's bytes, read in 1 MiB blocks."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
 
 
 def float_text(value: float) -> str:

@@ -44,6 +44,7 @@ from typing import Any, Literal
 import rfc8785
 
 from runner.errors import EXIT_BAD_INPUT, EXIT_INTEGRITY, EXIT_INVALID, LotproofError
+from runner.hashing import file_sha256
 
 __all__ = [
     "GENESIS",
@@ -282,14 +283,6 @@ def _safe_relative(name: str) -> PurePosixPath | None:
     return path
 
 
-def _sha256_file(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
-
-
 def write_sha256sums(run_dir: Path, files: list[str]) -> Path:
     """Write ``SHA256SUMS`` for ``files`` (POSIX paths relative to ``run_dir``).
 
@@ -305,7 +298,7 @@ def write_sha256sums(run_dir: Path, files: list[str]) -> Path:
         if _safe_relative(name) is None or name == SUMS_FILE:
             raise ValueError(f"{name!r}: not a plain relative path inside the run folder")
         try:
-            lines.append(f"{_sha256_file(run_dir / name)}  {name}\n")
+            lines.append(f"{file_sha256(run_dir / name)}  {name}\n")
         except OSError as err:
             raise LedgerWriteError(f"{run_dir / name}: cannot read ({err.strerror})") from None
     target = run_dir / SUMS_FILE
@@ -470,7 +463,7 @@ def _check_file(run_dir: Path, name: str, sha256: Any, size: Any, where: str) ->
     if isinstance(size, int) and not isinstance(size, bool) and actual_size != size:
         return f"{name}: {actual_size} bytes, {where} records {size}"
     try:
-        actual = _sha256_file(path)
+        actual = file_sha256(path)
     except OSError as err:
         return f"{name}: cannot read ({err.strerror})"
     if actual != sha256:

@@ -22,7 +22,7 @@ from typing import Any
 from runner.executor import ImageResult
 from runner.recipe import LimitDef, Recipe
 
-__all__ = ["PASS", "FAIL", "INCOMPLETE", "LimitVerdict", "Verdicts", "evaluate_limits"]
+__all__ = ["PASS", "FAIL", "INCOMPLETE", "LimitVerdict", "Verdicts", "bound_text", "evaluate_limits"]
 
 PASS = "pass"
 FAIL = "fail"
@@ -46,12 +46,7 @@ class LimitVerdict:
     reason: str = ""
 
     def bound_text(self) -> str:
-        unit = "" if self.unit == "-" else f" {self.unit}"
-        if self.low is not None and self.high is not None:
-            return f"{self.low:g} to {self.high:g}{unit}"
-        if self.low is not None:
-            return f">= {self.low:g}{unit}"
-        return f"<= {self.high:g}{unit}"
+        return bound_text(self.low, self.high, self.unit)
 
     def as_dict(self) -> dict[str, Any]:
         return {
@@ -70,6 +65,16 @@ class LimitVerdict:
                 for image, (v, verdict) in self.per_image.items()
             },
         }
+
+
+def bound_text(low: float | None, high: float | None, unit: str) -> str:
+    """A limit's bounds as people read them: ``0.1 to 0.16``, ``>= 12 um``, ``<= 60 um``."""
+    unit = "" if unit == "-" else f" {unit}"
+    if low is not None and high is not None:
+        return f"{low:g} to {high:g}{unit}"
+    if low is not None:
+        return f">= {low:g}{unit}"
+    return f"<= {high:g}{unit}"
 
 
 def _json_number(value: float | None) -> float | None:

@@ -96,13 +96,10 @@ _WORKER: dict[str, Any] = {}
 
 
 def _worker_init(recipe_raw: bytes, recipe_path: str, cache_root: str | None) -> None:
-    import steps
-
+    # Compiled kernels load from numba's on-disk cache on first use, per dtype;
+    # warming every dtype ahead would cost far more than a run uses.
     _WORKER["recipe"] = parse_recipe(recipe_raw, recipe_path)
     _WORKER["store"] = DiskStore(Path(cache_root)) if cache_root else NullStore()
-    warm = getattr(steps, "warm_up", None)
-    if warm is not None:
-        warm()
 
 
 def _worker_task(sample: Sample, lot: str) -> ImageResult:

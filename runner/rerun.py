@@ -11,7 +11,6 @@ value, every object row and every verdict with the record.
 from __future__ import annotations
 
 import csv
-import hashlib
 import os
 from collections import defaultdict
 from dataclasses import dataclass, field
@@ -20,6 +19,7 @@ from typing import Any
 
 from runner.cache import NullStore
 from runner.errors import EXIT_BAD_INPUT, EXIT_INTEGRITY, LotproofError
+from runner.hashing import file_sha256
 from runner.inputs import Sample
 from runner.ledger import read_ledger, verify_run
 from runner.provenance import environment, environment_differences
@@ -87,14 +87,6 @@ class RerunReport:
         }
 
 
-def _sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
-
-
 def _index_by_checksum(root: Path, wanted: dict[str, int]) -> dict[str, Path]:
     """Files under ``root`` whose sha256 is in ``wanted`` (sha256 -> size), found by size first."""
     sizes = set(wanted.values())
@@ -105,7 +97,7 @@ def _index_by_checksum(root: Path, wanted: dict[str, int]) -> dict[str, Path]:
             try:
                 if not path.is_file() or path.stat().st_size not in sizes:
                     continue
-                digest = _sha256(path)
+                digest = file_sha256(path)
             except OSError:
                 continue
             if digest in wanted and digest not in found:
@@ -122,10 +114,10 @@ def _locate_inputs(events: list[dict[str, Any]], recorded_lot: Path, lot: Path |
     changed: list[str] = []
     for e in inputs:
         candidate = base / e["path"]
-        if candidate.is_file() and _sha256(candidate) == e["sha256"]:
+        if candidate.is_file() and file_sha256(candidate) == e["sha256"]:
             located[(e["image"], e["input"])] = candidate
         elif candidate.is_file():
-            changed.append(f"{e['path']} (sha256 now {_sha256(candidate)[:16]}..., recorded {e['sha256'][:16]}...)")
+            changed.append(f"{e['path']} (sha256 now {file_sha256(candidate)[:16]}..., recorded {e['sha256'][:16]}...)")
         else:
             missing.append(e["path"])
     unresolved = [e for e in inputs if (e["image"], e["input"]) not in located]

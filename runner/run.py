@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import hashlib
 import os
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -12,6 +11,7 @@ from typing import Any
 from runner.cache import DiskStore, NullStore, Store
 from runner.errors import EXIT_BAD_INPUT, EXIT_INVALID, EXIT_LIMIT_FAILED, EXIT_OK, LotproofError
 from runner.executor import ImageResult
+from runner.hashing import file_sha256
 from runner.inputs import Sample, find_samples
 from runner.ledger import (
     LEDGER_FILE,
@@ -222,7 +222,7 @@ def run_lot(
         files.append(SUMS_FILE)
         for name in files:
             path = run_dir / name
-            ledger.append("output", path=name, sha256=_sha256_of(path), size=path.stat().st_size)
+            ledger.append("output", path=name, sha256=file_sha256(path), size=path.stat().st_size)
         summary = RunSummary(run_dir, recipe, lot, results, verdicts, files, store.location)
         seal = ledger.append("run-end", time_utc=utc_now(), exit_code=summary.exit_code)
     summary.seal = seal
@@ -230,11 +230,3 @@ def run_lot(
         write_signature(run_dir, seal, sign)
         summary.signed = True
     return summary
-
-
-def _sha256_of(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
