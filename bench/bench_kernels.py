@@ -41,11 +41,11 @@ from skimage import morphology as skmorph
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from steps import _morph, _morph_numba  # noqa: E402
-from steps import footprints as fps  # noqa: E402
-from steps import measure as meas  # noqa: E402
-from steps import morphology as morph  # noqa: E402
-from steps import threshold as thr  # noqa: E402
+from lotproof.steps import _morph, _morph_numba  # noqa: E402
+from lotproof.steps import footprints as fps  # noqa: E402
+from lotproof.steps import measure as meas  # noqa: E402
+from lotproof.steps import morphology as morph  # noqa: E402
+from lotproof.steps import threshold as thr  # noqa: E402
 
 cv2.setNumThreads(1)
 REPEATS = 7

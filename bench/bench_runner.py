@@ -38,10 +38,10 @@ import tifffile
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from runner import load_recipe, run_lot  # noqa: E402
-from runner.cache import DiskStore  # noqa: E402
-from runner.executor import resolve_params  # noqa: E402
-from steps import REGISTRY, Output  # noqa: E402
+from lotproof import load_recipe, run_lot  # noqa: E402
+from lotproof.runner.evaluate.cache import DiskStore  # noqa: E402
+from lotproof.runner.evaluate.image import resolve_params  # noqa: E402
+from lotproof.steps import REGISTRY, Output  # noqa: E402
 
 RECIPE = """\
 format: lotproof/1
@@ -147,7 +147,7 @@ def peak_rss_child(recipe: Path, lot: Path, out: Path, jobs: int) -> int:
     code = (
         "import resource, sys; sys.path.insert(0, %r)\n"
         "from runner import run_lot\n"
-        "from runner.cache import NullStore\n"
+        "from lotproof.runner.evaluate.cache import NullStore\n"
         "run_lot(%r, %r, %r, store=NullStore(), jobs=%d)\n"
         "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)\n"
     ) % (str(ROOT), str(recipe), str(lot), str(out), jobs)

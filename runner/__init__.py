@@ -1,28 +1,15 @@
-"""lotproof's machinery: recipes, the step graph, the executor, limits, run folders, CLI.
+"""lotproof's machinery, one sub-package per stage of a run, in the order data flows.
 
-Every command has a function behind it, for notebooks and scripts::
+``recipe``   recipe text -> checked model -> step graph (YAML positions, schema, diff)
+``evaluate`` one image: reading inputs, hashing, the cache, evaluating the graph
+``lot``      spreading a lot's images over local processes or a dask cluster
+``record``   the run folder: files, ledger, verdicts, signatures, exports, compare
+``show``     what people look at: the report, the preview sheet
+``jobs``     whole jobs built on the stages above: a run, a rerun, the demo
+``cli``      the command line, a thin layer over the jobs and stages
 
-    from runner import load_recipe, run_lot
-    recipe = load_recipe("recipes/filter-disc-porosity.yaml")
-    summary = run_lot(recipe, "demo_run/FD-2611", "runs")
-    summary.verdicts.lot          # 'pass' | 'fail' | 'incomplete'
+Imports go one way, down this list (``errors`` and ``files`` serve every stage);
+``tests/test_layout.py`` keeps it so.
 """
 
 __version__ = "0.1.0"
-
-from runner.errors import InputError, LotproofError, Problem, RecipeError  # noqa: E402
-from runner.recipe import Recipe, load_recipe, parse_recipe  # noqa: E402
-from runner.run import RunSummary, run_lot  # noqa: E402
-
-__all__ = [
-    "InputError",
-    "LotproofError",
-    "Problem",
-    "Recipe",
-    "RecipeError",
-    "RunSummary",
-    "__version__",
-    "load_recipe",
-    "parse_recipe",
-    "run_lot",
-]

@@ -1,17 +1,17 @@
 """lotproof's step kinds: one module per family, registered in :data:`REGISTRY`.
 
 Each step kind is a frozen pydantic parameter model, a pure function on numpy
-arrays and a version string (see :mod:`steps._registry`). Steps know nothing of
+arrays and a version string (see :mod:`lotproof.steps._registry`). Steps know nothing of
 recipes, caches, ledgers or files.
 """
 
-from steps._data import Output, Table
-from steps._registry import DATA_KINDS, REGISTRY, SAME, StepKind, StepParams, get_kind, step
-from steps._units import AREA_UNITS, LENGTH_UNITS, Area, Length, resolve_to_px
+from lotproof.steps._data import Output, Table
+from lotproof.steps._registry import DATA_KINDS, REGISTRY, SAME, StepKind, StepParams, get_kind, step
+from lotproof.steps._units import AREA_UNITS, LENGTH_UNITS, Area, Length, resolve_to_px
 
 # Importing the family modules registers their step kinds.
-from steps import filters, masks, measure, morphology, threshold  # noqa: E402,F401  isort: skip
-from steps import granulometry, segmentation  # noqa: E402,F401  isort: skip
+from lotproof.steps import filters, masks, measure, morphology, threshold  # noqa: E402,F401  isort: skip
+from lotproof.steps import granulometry, segmentation  # noqa: E402,F401  isort: skip
 
 __all__ = [
     "AREA_UNITS",

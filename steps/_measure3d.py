@@ -1,6 +1,6 @@
 """The 3-D half of the ``measure`` step kind: objects in a volume, in physical units.
 
-``steps.measure.measure`` dispatches a 3-D mask or label volume here. Voxel
+``lotproof.steps.measure.measure`` dispatches a 3-D mask or label volume here. Voxel
 ``(k, i, j)`` (slice, row, column) has its centre at ``(k dz, i dy, j dx)`` um;
 the voxel size may differ per axis (anisotropic voxels) and every quantity
 below honours it.
@@ -22,7 +22,7 @@ import numpy as np
 from scipy import ndimage as ndi
 from skimage.measure import marching_cubes, mesh_surface_area
 
-from steps._data import Table
+from lotproof.steps._data import Table
 
 __all__ = [
     "VOLUME_VALUES",
@@ -226,7 +226,7 @@ def object_table_3d(
     connectivity: int,
     spacing: tuple[float, float, float],
 ) -> Table:
-    """The per-object table (see :func:`steps.measure.measure`, 3-D)."""
+    """The per-object table (see :func:`lotproof.steps.measure.measure`, 3-D)."""
     dz, dy, dx = spacing
     voxel = dz * dy * dx
     n = np.bincount(ids.ravel(), minlength=count + 1)[1:].astype(np.float64)
@@ -303,7 +303,7 @@ def volume_values(
     spacing: tuple[float, float, float],
     border: str,
 ) -> dict[str, float]:
-    """The per-volume values (see :func:`steps.measure.measure`, 3-D)."""
+    """The per-volume values (see :func:`lotproof.steps.measure.measure`, 3-D)."""
     dz, dy, dx = spacing
     field_um3 = foreground.size * dz * dy * dx
     volume_fraction = float(np.count_nonzero(foreground)) / foreground.size

@@ -1,6 +1,6 @@
 """Compiled kernels behind the ``label`` and ``measure`` step kinds.
 
-Everything here works in pixel units on plain numpy arrays; ``steps.measure``
+Everything here works in pixel units on plain numpy arrays; ``lotproof.steps.measure``
 applies the pixel size. Objects are addressed by *compact ids* ``1..N`` (``0`` is
 background). Each public function is one single-threaded pass (or two) over
 the id image, compiled with numba (``cache=True``): per-object sums and counts
@@ -22,7 +22,7 @@ row/column of background on every side, so every window that touches an
 object is counted exactly once.
 
 Compiled signatures are kept few: ids are int64 and masks bool, C-contiguous
-(the public functions cast once, a no-op for what ``steps.measure`` passes).
+(the public functions cast once, a no-op for what ``lotproof.steps.measure`` passes).
 :func:`warm_up` compiles or loads them all ahead of the hot path.
 """
 

@@ -318,8 +318,8 @@ def _fast(image: np.ndarray, footprint: np.ndarray, operation: str) -> np.ndarra
 def _numba(
     image: np.ndarray, footprint: np.ndarray, operation: str, box: bool, strip: int | None = None
 ) -> np.ndarray:
-    """The compiled kernels of :mod:`steps._morph_numba`; ``strip`` overrides the chord strip."""
-    from steps import _morph_numba as nb
+    """The compiled kernels of :mod:`lotproof.steps._morph_numba`; ``strip`` overrides the chord strip."""
+    from lotproof.steps import _morph_numba as nb
 
     work = np.ascontiguousarray(image)
     if work.dtype == np.bool_:
@@ -387,8 +387,8 @@ def _numba(
 def _stencil(
     image: np.ndarray, footprint: np.ndarray, operation: str, box: bool = False
 ) -> np.ndarray:
-    """The fused kernels :func:`steps._morph_numba.stencil_kernel` and ``box_stencil_kernel``."""
-    from steps import _morph_numba as nb
+    """The fused kernels :func:`lotproof.steps._morph_numba.stencil_kernel` and ``box_stencil_kernel``."""
+    from lotproof.steps import _morph_numba as nb
 
     if image.ndim != 2:
         name = "numba-box-fused" if box else "numba-stencil"

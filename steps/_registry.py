@@ -12,11 +12,11 @@ The function is called as ``func(params, *inputs, spacing=spacing)`` where
 * ``params`` is an instance of the parameter model whose lengths and areas have
   already been resolved to pixels (``params.radius.px``),
 * ``inputs`` are numpy arrays (``image``, ``mask``, ``labels``) or
-  :class:`~steps._data.Table` objects, in the order of the recipe's ``to:``,
+  :class:`~lotproof.steps._data.Table` objects, in the order of the recipe's ``to:``,
 * ``spacing`` is the physical size of one pixel along each array axis, in
   micrometres (``(dy, dx)`` in 2D, ``(dz, dy, dx)`` in 3D).
 
-It returns its data, or an :class:`~steps._data.Output` when it also reports
+It returns its data, or an :class:`~lotproof.steps._data.Output` when it also reports
 named values (a threshold level, per-image measurements). It must not read or
 write files, keep state between calls, or look at the clock.
 

@@ -8,9 +8,9 @@ import numpy as np
 from pydantic import Field, model_validator
 from scipy import ndimage
 
-from steps._registry import StepParams, step
-from steps._units import Length
-from steps.footprints import ball, disk
+from lotproof.steps._registry import StepParams, step
+from lotproof.steps._units import Length
+from lotproof.steps.footprints import ball, disk
 
 __all__ = [
     "GRAY_WEIGHTS",
@@ -197,7 +197,7 @@ def smooth(params: SmoothParams, image: np.ndarray, *, spacing: tuple[float, ...
     applied separably along each axis, support ``|x| <= round(4 sigma)``
     (``scipy.ndimage.gaussian_filter``, ``truncate=4``). Median footprint:
     offsets ``(y, x)`` with ``x^2 + y^2 <= r^2`` (``+ z^2`` in 3D), ``r`` the
-    radius in pixels, not rounded (``steps.footprints.disk`` and ``ball``); a
+    radius in pixels, not rounded (``lotproof.steps.footprints.disk`` and ``ball``); a
     radius below 1 px leaves the image unchanged.
     """
     if image.dtype.kind not in "uif":

@@ -47,8 +47,8 @@ from typing import Literal
 import numpy as np
 from pydantic import Field, model_validator
 
-from steps._registry import StepParams
-from steps._units import Length
+from lotproof.steps._registry import StepParams
+from lotproof.steps._units import Length
 
 __all__ = [
     "FOOTPRINTS_2D",

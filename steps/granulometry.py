@@ -16,11 +16,11 @@ from typing import Literal
 import numpy as np
 from pydantic import Field
 
-from steps import _morph
-from steps._data import Output, Table
-from steps._registry import StepParams, step
-from steps._units import Length
-from steps.footprints import diamond, disk, square
+from lotproof.steps import _morph
+from lotproof.steps._data import Output, Table
+from lotproof.steps._registry import StepParams, step
+from lotproof.steps._units import Length
+from lotproof.steps.footprints import diamond, disk, square
 
 __all__ = [
     "SPECTRUM_FOOTPRINTS",
@@ -159,7 +159,7 @@ def size_spectrum(
     Returns
     -------
     Output
-        ``data``: a :class:`~steps._data.Table` with one row per radius
+        ``data``: a :class:`~lotproof.steps._data.Table` with one row per radius
         ``r_k`` (k = 1..K) and the float64 columns of
         :data:`SPECTRUM_COLUMNS`: ``radius_low`` = ``r_{k-1}`` (``r_0 = 0``),
         ``radius_high`` = ``r_k`` (um), ``area_removed`` (um2) and
@@ -175,7 +175,7 @@ def size_spectrum(
     Notes
     -----
     With ``X`` the mask, ``γ_r`` the opening by the footprint of radius r
-    (``steps._morph`` kernels, exact digital shapes, pixels outside the image
+    (``lotproof.steps._morph`` kernels, exact digital shapes, pixels outside the image
     ignored), ``X_0 = X`` and ``X_k = X_{k-1} ∩ γ_{r_k}(X)``:
 
     * ``area_removed_k = (|X_{k-1}| - |X_k|) d²`` and

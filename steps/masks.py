@@ -14,8 +14,8 @@ import numpy as np
 from pydantic import Field, model_validator
 from scipy import ndimage
 
-from steps._registry import StepParams, step
-from steps._units import Area, Volume
+from lotproof.steps._registry import StepParams, step
+from lotproof.steps._units import Area, Volume
 
 __all__ = [
     "CONNECTIVITIES",

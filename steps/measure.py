@@ -29,11 +29,11 @@ from typing import Annotated, Literal
 import numpy as np
 from pydantic import Field
 
-from steps import _measure3d as _m3
-from steps import _measure_kernels as _k
-from steps._data import Output, Table
-from steps._measure3d import OBJECT_COLUMNS_3D, VOLUME_VALUES
-from steps._registry import StepParams, step
+from lotproof.steps import _measure3d as _m3
+from lotproof.steps import _measure_kernels as _k
+from lotproof.steps._data import Output, Table
+from lotproof.steps._measure3d import OBJECT_COLUMNS_3D, VOLUME_VALUES
+from lotproof.steps._registry import StepParams, step
 
 __all__ = [
     "CONNECTIVITY_2D",
@@ -371,7 +371,7 @@ def measure(params: MeasureParams, data: np.ndarray, *, spacing: tuple[float, ..
     Returns
     -------
     Output
-        ``data`` is a :class:`~steps._data.Table` with the columns of
+        ``data`` is a :class:`~lotproof.steps._data.Table` with the columns of
         :data:`OBJECT_COLUMNS` (2D) or :data:`OBJECT_COLUMNS_3D` (3D):
         ``label``, ``euler_number`` and ``touches_border`` (0/1) as int32,
         all others float64. ``values`` holds :data:`IMAGE_VALUES` (2D) or
@@ -686,7 +686,7 @@ def phase_fraction(
     Returns
     -------
     Output
-        ``data`` an empty :class:`~steps._data.Table`; ``values``:
+        ``data`` an empty :class:`~lotproof.steps._data.Table`; ``values``:
         ``fraction`` = |phase and reference| / |reference| (NaN for an empty
         reference) and ``reference_fraction`` = |reference| / |field|, both
         dimensionless.

@@ -1,6 +1,6 @@
 """Flat morphology: erode, widen, open, close, outline, subtract-background.
 
-Every step here slides a footprint (``steps.footprints``) over a gray image or a
+Every step here slides a footprint (``lotproof.steps.footprints``) over a gray image or a
 mask. Gray images take the min / max over the footprint; masks take the binary
 erosion / dilation, which is the same thing for True > False.
 
@@ -21,9 +21,9 @@ from typing import Literal
 import numpy as np
 from pydantic import Field
 
-from steps import _morph
-from steps._registry import step
-from steps.footprints import MorphologyParams, build_footprint
+from lotproof.steps import _morph
+from lotproof.steps._registry import step
+from lotproof.steps.footprints import MorphologyParams, build_footprint
 
 __all__ = [
     "MorphologyParams",

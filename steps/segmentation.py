@@ -20,9 +20,9 @@ from scipy.spatial import cKDTree
 from skimage.morphology import local_maxima, reconstruction
 from skimage.segmentation import watershed
 
-from steps._registry import StepParams, step
-from steps._units import Length
-from steps.measure import CONNECTIVITIES, resolve_connectivity
+from lotproof.steps._registry import StepParams, step
+from lotproof.steps._units import Length
+from lotproof.steps.measure import CONNECTIVITIES, resolve_connectivity
 
 __all__ = [
     "SplitParams",

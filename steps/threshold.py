@@ -29,11 +29,11 @@ from typing import Literal
 import numpy as np
 from pydantic import Field, model_validator
 
-from steps import _threshold_kernels as _tk
-from steps._data import Output
-from steps._registry import StepParams, step
-from steps._units import Length
-from steps.footprints import nearest_odd
+from lotproof.steps import _threshold_kernels as _tk
+from lotproof.steps._data import Output
+from lotproof.steps._registry import StepParams, step
+from lotproof.steps._units import Length
+from lotproof.steps.footprints import nearest_odd
 
 __all__ = [
     "THRESHOLD_METHODS",
@@ -334,7 +334,7 @@ def threshold(params: ThresholdParams, image: np.ndarray, *, spacing: tuple[floa
       on x, counting only pixels inside the image - offset``; ``s`` is
       ``block_size`` rounded to the nearest odd whole number,
       ``2 floor(b / 2) + 1`` (an even number rounds up; the rounding rule of
-      ``steps.footprints.nearest_odd``), at least 3. Integer images up to 32
+      ``lotproof.steps.footprints.nearest_odd``), at least 3. Integer images up to 32
       bits are summed exactly in int64, others in float64.
 
     Ties: otsu, yen and isodata take the lowest level among equal maxima;

@@ -26,11 +26,11 @@ import numpy as np
 import pytest
 import tifffile
 
-from runner import run_lot
-from runner.cli import main
-from runner.errors import EXIT_BAD_INPUT, InputError
-from runner.inputs import MAX_PIXELS, MIN_SIDE, read_image
-from runner.run import RunSummary
+from lotproof import run_lot
+from lotproof.runner.cli.main import main
+from lotproof.runner.errors import EXIT_BAD_INPUT, InputError
+from lotproof.runner.evaluate.inputs import MAX_PIXELS, MIN_SIDE, read_image
+from lotproof.runner.jobs.run import RunSummary
 
 IMAGES = Path(__file__).parent / "bad_inputs" / "images"
 GENERATOR = IMAGES / "make_bad_images.py"

@@ -28,9 +28,9 @@ import numpy as np
 import pytest
 import tifffile
 
-from runner.cli import main
-from runner.errors import EXIT_BAD_INPUT, EXIT_INVALID, EXIT_OK, RecipeError
-from runner.recipe import load_recipe
+from lotproof.runner.cli.main import main
+from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INVALID, EXIT_OK, RecipeError
+from lotproof.runner.recipe.model import load_recipe
 
 FOLDER = Path(__file__).parent / "bad_inputs" / "recipes"
 SIDECAR = FOLDER / "EXPECTED.json"

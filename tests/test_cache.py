@@ -17,12 +17,12 @@ import numpy as np
 import pytest
 import tifffile
 
-from runner import load_recipe, run_lot
-from runner.cache import DiskStore, NullStore, default_cache_dir
-from runner.cli import main
-from runner.hashing import content_checksum, hash_array, input_key, library_versions, step_key
-from runner.recipe import parse_recipe
-from steps import REGISTRY, Output, Table, resolve_to_px
+from lotproof import load_recipe, run_lot
+from lotproof.runner.evaluate.cache import DiskStore, NullStore, default_cache_dir
+from lotproof.runner.cli.main import main
+from lotproof.runner.evaluate.hashing import content_checksum, hash_array, input_key, library_versions, step_key
+from lotproof.runner.recipe.model import parse_recipe
+from lotproof.steps import REGISTRY, Output, Table, resolve_to_px
 
 RECIPE = """\
 format: lotproof/1
@@ -107,7 +107,7 @@ def _keys(text: str) -> dict[str, str]:
     for name in recipe.order:
         step = recipe.steps[name]
         kind = REGISTRY[step.kind]
-        from runner.executor import resolve_params
+        from lotproof.runner.evaluate.image import resolve_params
 
         params = resolve_params(step.params, (0.5, 0.5))
         keys[name] = step_key(kind.name, kind.version, params, (0.5, 0.5),
@@ -253,7 +253,7 @@ def test_concurrent_writers_do_not_corrupt(tmp_path: Path) -> None:
 _KILLED_WRITER = """
 import sys, numpy as np
 from pathlib import Path
-from runner.cache import DiskStore
+from lotproof.runner.evaluate.cache import DiskStore
 store = DiskStore(Path(sys.argv[1]))
 print("ready", flush=True)
 i = 0

@@ -9,11 +9,11 @@ import numpy as np
 import pytest
 import tifffile
 
-import runner.cli_record  # noqa: F401 - registers the record commands
-from runner import run_lot
-from runner.cli import main
-from runner.compare import ValueDelta, compare_runs
-from runner.errors import EXIT_BAD_INPUT, EXIT_OK, InputError
+import lotproof.runner.cli.record  # noqa: F401 - registers the record commands
+from lotproof import run_lot
+from lotproof.runner.cli.main import main
+from lotproof.runner.record.compare import ValueDelta, compare_runs
+from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_OK, InputError
 
 RECIPE = """\
 format: lotproof/1

@@ -8,10 +8,10 @@ from pathlib import Path
 
 import pytest
 
-import runner.cli_record  # noqa: F401 - registers the record commands
-from runner.cli import main
-from runner.diff import diff_recipes
-from runner.errors import EXIT_INVALID, EXIT_OK, RecipeError
+import lotproof.runner.cli.record  # noqa: F401 - registers the record commands
+from lotproof.runner.cli.main import main
+from lotproof.runner.recipe.diff import diff_recipes
+from lotproof.runner.errors import EXIT_INVALID, EXIT_OK, RecipeError
 
 BASE = """\
 format: lotproof/1

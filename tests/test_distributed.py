@@ -26,12 +26,12 @@ from pydantic import Field
 
 distributed = pytest.importorskip("distributed")
 
-from runner import load_recipe, run_lot  # noqa: E402
-from runner.backends import EXECUTOR_KINDS, ExecutorError, make_executor, open_executor  # noqa: E402
-from runner.cache import DiskStore  # noqa: E402
-from runner.errors import EXIT_BAD_INPUT, EXIT_OK  # noqa: E402
-from runner.pool import LocalExecutor  # noqa: E402
-from steps import REGISTRY, StepParams, step  # noqa: E402
+from lotproof import load_recipe, run_lot  # noqa: E402
+from lotproof.runner.lot.choose import EXECUTOR_KINDS, ExecutorError, make_executor, open_executor  # noqa: E402
+from lotproof.runner.evaluate.cache import DiskStore  # noqa: E402
+from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_OK  # noqa: E402
+from lotproof.runner.lot.local import LocalExecutor  # noqa: E402
+from lotproof.steps import REGISTRY, StepParams, step  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO_RECIPE = ROOT / "recipes" / "filter-disc-porosity.yaml"
@@ -228,7 +228,7 @@ def test_demo_lot_gives_the_local_executors_files(tmp_path: Path, executor: Any)
     local = run_lot(recipe, DEMO_LOT, tmp_path / "local", store=DiskStore(tmp_path / "c1"), jobs=1)
     dask = run_lot(recipe, DEMO_LOT, tmp_path / "dask", store=DiskStore(tmp_path / "c2"),
                    executor=executor)
-    # source: the local executor (runner.pool.LocalExecutor, jobs=1), the reference run
+    # source: the local executor (lotproof.runner.lot.local.LocalExecutor, jobs=1), the reference run
     assert [r.id for r in dask.results] == [r.id for r in local.results]
     assert [(r.status, r.reason) for r in dask.results] == [(r.status, r.reason) for r in local.results]
     assert all(r.status == "ok" for r in dask.results)
@@ -254,7 +254,7 @@ def test_synthetic_lot_with_a_broken_image_cold_then_warm(tmp_path: Path, execut
                     executor=LocalExecutor(1))
     cold = run_lot(recipe, Path("lot"), Path("dask"), store=DiskStore(Path("c2")), executor=executor)
     warm = run_lot(recipe, Path("lot"), Path("dask"), store=DiskStore(Path("c2")), executor=executor)
-    # source: the local executor (runner.pool.LocalExecutor, jobs=1), the reference run
+    # source: the local executor (lotproof.runner.lot.local.LocalExecutor, jobs=1), the reference run
     assert _run_files(cold.run_dir) == _run_files(local.run_dir)
     assert _run_files(warm.run_dir, cache_column=False) == _run_files(cold.run_dir, cache_column=False)
     assert _ledger(cold.run_dir) == _ledger(local.run_dir)
@@ -291,7 +291,7 @@ def test_an_existing_scheduler_by_address_and_by_dask_config(tmp_path: Path, exe
     with open_executor("dask", jobs=1, scheduler=address, workers=None) as by_address:
         assert by_address.description.startswith(f"dask, scheduler {address}, 2 workers at start")
         remote = run_lot(recipe, lot, tmp_path / "remote", executor=by_address)
-    # source: the local executor (runner.pool.LocalExecutor, jobs=1), the reference run
+    # source: the local executor (lotproof.runner.lot.local.LocalExecutor, jobs=1), the reference run
     assert _run_files(remote.run_dir) == _run_files(local.run_dir)
     # $DASK_SCHEDULER_ADDRESS is read into dask's config as scheduler-address
     with dask.config.set({"scheduler-address": address}):
@@ -326,7 +326,7 @@ def test_a_worker_dying_mid_image_is_retried_once_and_the_lot_completes(
     assert not marker.exists() and (tmp_path / "die-once.taken").exists()
     assert _workers(executor) != before or len(before) < 2
     assert [r.status for r in dask.results] == ["ok"] * 6 and dask.exit_code == EXIT_OK
-    # source: the local executor (runner.pool.LocalExecutor, jobs=1), the reference run
+    # source: the local executor (lotproof.runner.lot.local.LocalExecutor, jobs=1), the reference run
     # (the retried image read its first step from the cache: steps.csv says "reused")
     assert _run_files(dask.run_dir, cache_column=False) == _run_files(local.run_dir, cache_column=False)
     retried = dask.results[2]
@@ -390,7 +390,7 @@ def test_dask_without_a_scheduler_address_says_how_to_give_one(monkeypatch: pyte
 
 
 def test_an_unreachable_scheduler_is_an_executor_error() -> None:
-    from runner.distributed import DaskExecutor
+    from lotproof.runner.lot.cluster import DaskExecutor
 
     # nothing listens on port 1 of loopback; the client keeps trying until its timeout
     with pytest.raises(ExecutorError, match="cannot reach the dask scheduler at tcp://127.0.0.1:1"):
@@ -398,8 +398,8 @@ def test_an_unreachable_scheduler_is_an_executor_error() -> None:
 
 
 def test_a_worker_with_other_software_analyses_nothing() -> None:
-    from runner.distributed import _analyse_on_worker, software_fingerprint
-    from runner.inputs import Sample
+    from lotproof.runner.lot.cluster import _analyse_on_worker, software_fingerprint
+    from lotproof.runner.evaluate.inputs import Sample
 
     other = software_fingerprint()
     other["libraries"] = {**other["libraries"], "numpy": "0.0.1"}
@@ -414,11 +414,11 @@ def test_a_worker_with_other_software_analyses_nothing() -> None:
 
 def test_a_local_run_never_imports_dask() -> None:
     code = (
-        "import sys, runner, runner.cli, runner.backends, runner.run\n"
-        "from runner.backends import make_executor\n"
+        "import sys, runner, lotproof.runner.cli.main, lotproof.runner.lot.choose, lotproof.runner.jobs.run\n"
+        "from lotproof.runner.lot.choose import make_executor\n"
         "make_executor('local', jobs=2, scheduler=None, workers=None)\n"
         "bad = sorted(m for m in sys.modules if m.split('.')[0] in ('dask', 'distributed'))\n"
-        "assert not bad and 'runner.distributed' not in sys.modules, bad\n"
+        "assert not bad and 'lotproof.runner.lot.cluster' not in sys.modules, bad\n"
     )
     done = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True)
     assert done.returncode == 0, done.stderr

@@ -13,10 +13,10 @@ import pytest
 from cryptography.hazmat.primitives.serialization import load_pem_public_key
 from test_ledger import make_record
 
-import runner.cli_record  # noqa: F401 - registers the record commands
-from runner.cli import main
-from runner.errors import EXIT_INTEGRITY, EXIT_INVALID, EXIT_OK
-from runner.export import (
+import lotproof.runner.cli.record  # noqa: F401 - registers the record commands
+from lotproof.runner.cli.main import main
+from lotproof.runner.errors import EXIT_INTEGRITY, EXIT_INVALID, EXIT_OK
+from lotproof.runner.record.export import (
     PAYLOAD_TYPE,
     PREDICATE_TYPE,
     STATEMENT_TYPE,
@@ -25,7 +25,7 @@ from runner.export import (
     pae,
     prov_document,
 )
-from runner.ledger import LEDGER_FILE, LedgerError, canonical, keygen, read_ledger, verify_run
+from lotproof.runner.record.ledger import LEDGER_FILE, LedgerError, canonical, keygen, read_ledger, verify_run
 
 
 @pytest.fixture(scope="module")

@@ -11,9 +11,9 @@ from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 from pydantic import ValidationError
 
-from steps import REGISTRY
-from steps._units import Length
-from steps.filters import (
+from lotproof.steps import REGISTRY
+from lotproof.steps._units import Length
+from lotproof.steps.filters import (
     GAUSSIAN_TRUNCATE,
     GRAY_WEIGHTS,
     LUMA_WEIGHTS,

@@ -19,8 +19,8 @@ import yaml
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from runner.errors import RecipeError
-from runner.recipe import Recipe, parse_recipe
+from lotproof.runner.errors import RecipeError
+from lotproof.runner.recipe.model import Recipe, parse_recipe
 
 VALID = """\
 format: lotproof/1

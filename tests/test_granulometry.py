@@ -11,10 +11,10 @@ from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 from pydantic import ValidationError
 
-from runner.executor import resolve_params
-from steps import REGISTRY, Output, Table
-from steps._units import Length
-from steps.granulometry import (
+from lotproof.runner.evaluate.image import resolve_params
+from lotproof.steps import REGISTRY, Output, Table
+from lotproof.steps._units import Length
+from lotproof.steps.granulometry import (
     MAX_RADII,
     SPECTRUM_COLUMNS,
     SPECTRUM_FOOTPRINTS,
@@ -184,8 +184,8 @@ def test_fractions_are_non_negative_and_sum_to_one_with_the_residual(mask, footp
 def test_nested_sieves_equal_plain_openings(mask, footprint) -> None:
     # diamonds and squares of integer radii are openings of each other, so the
     # remaining area after radius r is the area of the opening by radius r alone
-    from steps import _morph
-    from steps.granulometry import _footprint
+    from lotproof.steps import _morph
+    from lotproof.steps.granulometry import _footprint
 
     out = spectrum(mask, 4.0, footprint=footprint)
     removed = np.cumsum(column(out, "area_removed"))

@@ -16,8 +16,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from steps import _morph, _morph_numba
-from steps import footprints as fps
+from lotproof.steps import _morph, _morph_numba
+from lotproof.steps import footprints as fps
 
 PROPERTY = settings(max_examples=200, deadline=None)
 FORCED = tuple(m for m in _morph.METHODS if m != "reference")

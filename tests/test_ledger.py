@@ -16,11 +16,11 @@ import tifffile
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-import runner.cli_record  # noqa: F401 - registers verify, keygen, export, diff, compare
-from runner import __version__, run_lot
-from runner.cli import main
-from runner.errors import EXIT_BAD_INPUT, EXIT_INTEGRITY, EXIT_INVALID, EXIT_OK
-from runner.ledger import (
+import lotproof.runner.cli.record  # noqa: F401 - registers verify, keygen, export, diff, compare
+from lotproof import __version__, run_lot
+from lotproof.runner.cli.main import main
+from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INTEGRITY, EXIT_INVALID, EXIT_OK
+from lotproof.runner.record.ledger import (
     GENESIS,
     LEDGER_FILE,
     SIGNATURE_FILE,

@@ -9,9 +9,9 @@ from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 from pydantic import ValidationError
 
-from steps import REGISTRY
-from steps._units import Area
-from steps.masks import (
+from lotproof.steps import REGISTRY
+from lotproof.steps._units import Area
+from lotproof.steps.masks import (
     BACKGROUND_CONNECTIVITY,
     COMBINE_METHODS,
     CONNECTIVITIES,

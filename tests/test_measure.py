@@ -12,8 +12,8 @@ from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 from pydantic import ValidationError
 
-from steps import Output, Table, get_kind
-from steps.measure import (
+from lotproof.steps import Output, Table, get_kind
+from lotproof.steps.measure import (
     CONNECTIVITIES,
     CONNECTIVITY_2D,
     CONNECTIVITY_3D,

@@ -1,6 +1,6 @@
 """The compiled measure kernels give exactly what the numpy formulations gave.
 
-``steps._measure_kernels`` keeps its former numpy implementations as
+``lotproof.steps._measure_kernels`` keeps its former numpy implementations as
 ``_reference_*`` functions (vectorised bincount / sort formulations, checked
 against scikit-image in ``tests/reference/test_measure_reference.py``). Every
 compiled kernel is compared with its reference on random label images of many
@@ -19,7 +19,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from steps import _measure_kernels as mk
+from lotproof.steps import _measure_kernels as mk
 
 PROPERTY = settings(max_examples=150, deadline=None, database=None)
 MOMENT_NAMES = ("n", "row", "col", "mu_rr", "mu_cc", "mu_rc")

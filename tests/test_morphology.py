@@ -6,11 +6,11 @@ import numpy as np
 import pytest
 from pydantic import ValidationError
 
-from steps import _morph
-from steps import footprints as fps
-from steps import morphology as morph
-from steps._registry import get_kind
-from steps.footprints import (
+from lotproof.steps import _morph
+from lotproof.steps import footprints as fps
+from lotproof.steps import morphology as morph
+from lotproof.steps._registry import get_kind
+from lotproof.steps.footprints import (
     FOOTPRINT_NEEDS,
     FOOTPRINTS,
     FOOTPRINTS_2D,

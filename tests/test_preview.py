@@ -11,12 +11,12 @@ import tifffile
 from PIL import Image
 from scipy import ndimage
 
-import runner.cli_report  # noqa: F401  registers report and preview on the cli group
-from runner.cache import DiskStore
-from runner.cli import main
-from runner.figures import label_colours
-from runner.preview import SIDECAR_FORMAT, TILE_SIDE, PreviewError, make_preview, write_preview
-from runner.recipe import load_recipe
+import lotproof.runner.cli.show  # noqa: F401  registers report and preview on the cli group
+from lotproof.runner.evaluate.cache import DiskStore
+from lotproof.runner.cli.main import main
+from lotproof.runner.evaluate.pictures import label_colours
+from lotproof.runner.show.preview import SIDECAR_FORMAT, TILE_SIDE, PreviewError, make_preview, write_preview
+from lotproof.runner.recipe.model import load_recipe
 
 RECIPE = """\
 format: lotproof/1

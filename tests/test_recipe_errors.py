@@ -6,9 +6,9 @@ from pathlib import Path
 
 import pytest
 
-from runner.cli import main
-from runner.errors import EXIT_INVALID, RecipeError
-from runner.recipe import load_recipe
+from lotproof.runner.cli.main import main
+from lotproof.runner.errors import EXIT_INVALID, RecipeError
+from lotproof.runner.recipe.model import load_recipe
 
 BASE = """\
 format: lotproof/1

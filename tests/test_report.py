@@ -16,13 +16,13 @@ import tifffile
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-import runner.cli_report  # noqa: F401  registers report and preview on the cli group
-from runner import run_lot
-from runner.cli import main
-from runner.errors import RunFolderError
-from runner.ledger import LEDGER_FILE, SUMS_FILE, verify_run
-from runner.outputs import CAUTION
-from runner.report import (
+import lotproof.runner.cli.show  # noqa: F401  registers report and preview on the cli group
+from lotproof import run_lot
+from lotproof.runner.cli.main import main
+from lotproof.runner.errors import RunFolderError
+from lotproof.runner.record.ledger import LEDGER_FILE, SUMS_FILE, verify_run
+from lotproof.runner.record.folder import CAUTION
+from lotproof.runner.show.report import (
     REPORT_FILE,
     VERDICT_MARKS,
     _bin_edges,
@@ -292,7 +292,7 @@ def test_not_a_run_folder_is_exit_2(tmp_path: Path) -> None:
 def test_pdf_without_chromium_is_exit_3_with_a_clear_message(
     finished_run: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    monkeypatch.setattr(runner.cli_report, "find_chromium", lambda: None)
+    monkeypatch.setattr(lotproof.runner.cli.show, "find_chromium", lambda: None)
     out = tmp_path / "r.pdf"
     with pytest.raises(SystemExit) as exit_info:
         main(["report", str(finished_run), "--pdf", "--out", str(out)])

@@ -16,11 +16,11 @@ import pytest
 import tifffile
 from PIL import Image
 
-import runner.cli_report  # noqa: F401  registers report and preview on the cli group
-from runner import run_lot
-from runner.cli import main
-from runner.cli_report import chromium_command, find_chromium
-from runner.report import rebuild_report
+import lotproof.runner.cli.show  # noqa: F401  registers report and preview on the cli group
+from lotproof import run_lot
+from lotproof.runner.cli.main import main
+from lotproof.runner.cli.show import chromium_command, find_chromium
+from lotproof.runner.show.report import rebuild_report
 
 RECIPE = """\
 format: lotproof/1

@@ -10,14 +10,14 @@ import numpy as np
 import pytest
 import tifffile
 
-import runner.rerun as rerun_module
-from runner import run_lot
-from runner.cache import DiskStore
-from runner.cli import main
-from runner.errors import EXIT_BAD_INPUT, EXIT_INTEGRITY
-from runner.ledger import read_ledger, verify_run
-from runner.rerun import RerunRefused, rerun
-from steps import REGISTRY
+import lotproof.runner.jobs.rerun as rerun_module
+from lotproof import run_lot
+from lotproof.runner.evaluate.cache import DiskStore
+from lotproof.runner.cli.main import main
+from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INTEGRITY
+from lotproof.runner.record.ledger import read_ledger, verify_run
+from lotproof.runner.jobs.rerun import RerunRefused, rerun
+from lotproof.steps import REGISTRY
 
 RECIPE = """\
 format: lotproof/1

@@ -11,9 +11,9 @@ import pytest
 import tifffile
 from PIL import Image
 
-from runner import load_recipe, run_lot
-from runner.cli import main
-from runner.errors import EXIT_BAD_INPUT, EXIT_LIMIT_FAILED, EXIT_OK
+from lotproof import load_recipe, run_lot
+from lotproof.runner.cli.main import main
+from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_LIMIT_FAILED, EXIT_OK
 
 PIXEL_UM = 0.5
 

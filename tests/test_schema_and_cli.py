@@ -7,9 +7,9 @@ from pathlib import Path
 
 import pytest
 
-from runner.cli import main
-from runner.schema import SCHEMA_FILE, recipe_json_schema, schema_text
-from steps import REGISTRY
+from lotproof.runner.cli.main import main
+from lotproof.runner.recipe.schema import SCHEMA_FILE, recipe_json_schema, schema_text
+from lotproof.steps import REGISTRY
 
 ROOT = Path(__file__).resolve().parent.parent
 RECIPES = sorted((ROOT / "recipes").glob("*.yaml"))

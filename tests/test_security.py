@@ -23,15 +23,15 @@ import pytest
 import tifffile
 import yaml
 
-import runner.inputs as inputs_module
-from runner.cache import _MAX_HEADER, DiskStore
-from runner.cli import main
-from runner.errors import EXIT_BAD_INPUT, EXIT_INVALID, EXIT_LIMIT_FAILED, EXIT_OK, InputError, RecipeError
-from runner.inputs import MAX_FILE_BYTES, read_image
-from runner.ledger import verify_run
-from runner.outputs import _kept_name, create_run_folder
-from runner.recipe import load_recipe, parse_recipe
-from runner.yamlpos import MAX_RECIPE_BYTES, _StrictLoader
+import lotproof.runner.evaluate.inputs as inputs_module
+from lotproof.runner.evaluate.cache import _MAX_HEADER, DiskStore
+from lotproof.runner.cli.main import main
+from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INVALID, EXIT_LIMIT_FAILED, EXIT_OK, InputError, RecipeError
+from lotproof.runner.evaluate.inputs import MAX_FILE_BYTES, read_image
+from lotproof.runner.record.ledger import verify_run
+from lotproof.runner.record.folder import _kept_name, create_run_folder
+from lotproof.runner.recipe.model import load_recipe, parse_recipe
+from lotproof.runner.recipe.yamlpos import MAX_RECIPE_BYTES, _StrictLoader
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -326,7 +326,7 @@ def hook(event, args):
     if any(inside(a) for a in args):
         seen.append([event, [a if isinstance(a, (int, type(None))) else os.fsdecode(a) if isinstance(a, (str, bytes, os.PathLike)) else repr(a) for a in args]])
 sys.addaudithook(hook)
-from runner.cli import main
+from lotproof.runner.cli.main import main
 try:
     main(sys.argv[2:])
 finally:

@@ -10,10 +10,10 @@ from hypothesis.extra import numpy as hnp
 from pydantic import ValidationError
 from scipy import ndimage
 
-from runner.executor import resolve_params
-from steps import REGISTRY
-from steps._units import Length
-from steps.segmentation import SplitParams, raster_relabel, split_touching
+from lotproof.runner.evaluate.image import resolve_params
+from lotproof.steps import REGISTRY
+from lotproof.steps._units import Length
+from lotproof.steps.segmentation import SplitParams, raster_relabel, split_touching
 
 SPACING = (1.0, 1.0)
 

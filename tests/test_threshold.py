@@ -9,10 +9,10 @@ from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 from pydantic import ValidationError
 
-from steps import REGISTRY
-from steps._data import Output
-from steps._units import Length
-from steps.threshold import (
+from lotproof.steps import REGISTRY
+from lotproof.steps._data import Output
+from lotproof.steps._units import Length
+from lotproof.steps.threshold import (
     FLOAT_NBINS,
     THRESHOLD_FEATURES,
     THRESHOLD_METHODS,

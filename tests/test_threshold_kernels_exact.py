@@ -1,6 +1,6 @@
 """The compiled threshold kernels give exactly what the numpy formulations gave.
 
-``steps._threshold_kernels`` keeps the numpy formulations it replaced
+``lotproof.steps._threshold_kernels`` keeps the numpy formulations it replaced
 (``np.bincount`` histogram, Otsu's between-class variance over ``np.cumsum``
 and ``np.dot``) as ``_reference_*`` functions; the kernels must pick the same
 bin on every histogram -- integer images, float images' bin centres, values
@@ -15,8 +15,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from steps import _threshold_kernels as tk
-from steps import threshold as thr
+from lotproof.steps import _threshold_kernels as tk
+from lotproof.steps import threshold as thr
 
 PROPERTY = settings(max_examples=200, deadline=None, database=None)
 

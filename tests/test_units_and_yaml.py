@@ -7,9 +7,9 @@ import math
 import pytest
 from pydantic import BaseModel, ValidationError
 
-from runner.quantities import BoundError, parse_bound
-from runner.yamlpos import Position, load_yaml
-from steps import Area, Length, resolve_to_px
+from lotproof.runner.recipe.quantities import BoundError, parse_bound
+from lotproof.runner.recipe.yamlpos import Position, load_yaml
+from lotproof.steps import Area, Length, resolve_to_px
 
 
 class _Model(BaseModel):

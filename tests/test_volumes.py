@@ -10,15 +10,15 @@ import pytest
 import tifffile
 from pydantic import ValidationError
 
-from runner import load_recipe, run_lot
-from runner.errors import RecipeError
-from runner.executor import resolve_params
-from runner.inputs import read_image
-from steps import REGISTRY
-from steps._units import Area, Length, Volume, resolve_for_spacing, resolve_to_px
-from steps.footprints import MorphologyParams, build_footprint
-from steps.masks import RemoveSmallParams, remove_small
-from steps.measure import (
+from lotproof import load_recipe, run_lot
+from lotproof.runner.errors import RecipeError
+from lotproof.runner.evaluate.image import resolve_params
+from lotproof.runner.evaluate.inputs import read_image
+from lotproof.steps import REGISTRY
+from lotproof.steps._units import Area, Length, Volume, resolve_for_spacing, resolve_to_px
+from lotproof.steps.footprints import MorphologyParams, build_footprint
+from lotproof.steps.masks import RemoveSmallParams, remove_small
+from lotproof.steps.measure import (
     COLUMN_DEFINITIONS,
     COLUMN_DEFINITIONS_3D,
     IMAGE_VALUES,

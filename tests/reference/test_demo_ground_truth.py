@@ -12,7 +12,7 @@ from pathlib import Path
 
 import pytest
 
-from runner import load_recipe, run_lot
+from lotproof import load_recipe, run_lot
 
 ROOT = Path(__file__).resolve().parents[2]
 RECIPE = ROOT / "recipes" / "filter-disc-porosity.yaml"

@@ -12,9 +12,9 @@ import pytest
 import skimage.segmentation
 from scipy import ndimage
 
-from steps._units import Area
-from steps.filters import GrayParams, gray
-from steps.masks import (
+from lotproof.steps._units import Area
+from lotproof.steps.filters import GrayParams, gray
+from lotproof.steps.masks import (
     ClearBorderParams,
     FillHolesParams,
     RemoveSmallParams,

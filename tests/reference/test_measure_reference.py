@@ -14,7 +14,7 @@ import pytest
 from scipy import ndimage as ndi
 from skimage import measure as skm
 
-from steps.measure import LabelParams, MeasureParams, label, measure
+from lotproof.steps.measure import LabelParams, MeasureParams, label, measure
 
 SQUARE_UM = (0.5, 0.5)
 

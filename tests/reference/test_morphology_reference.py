@@ -22,10 +22,10 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from steps import _morph
-from steps import footprints as fps
-from steps import morphology as morph
-from steps.footprints import MorphologyParams
+from lotproof.steps import _morph
+from lotproof.steps import footprints as fps
+from lotproof.steps import morphology as morph
+from lotproof.steps.footprints import MorphologyParams
 
 SPACING = (1.0, 1.0)
 PROPERTY = settings(max_examples=150, deadline=None)

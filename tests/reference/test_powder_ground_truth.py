@@ -16,8 +16,8 @@ import numpy as np
 import pytest
 import tifffile
 
-from runner import load_recipe, run_lot
-from runner.demo import SCENARIOS, demo_paths
+from lotproof import load_recipe, run_lot
+from lotproof.runner.jobs.demo import SCENARIOS, demo_paths
 
 ROOT = Path(__file__).resolve().parents[2]
 DEMO = ROOT / "demo_run" / "powder"

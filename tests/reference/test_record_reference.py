@@ -27,8 +27,8 @@ from cryptography.hazmat.primitives.serialization import (
     PublicFormat,
 )
 
-from runner.export import pae, prov_document
-from runner.ledger import (
+from lotproof.runner.record.export import pae, prov_document
+from lotproof.runner.record.ledger import (
     LEDGER_FILE,
     SIGNATURE_FILE,
     SUMS_FILE,
@@ -179,7 +179,7 @@ def _rfc_keys(folder: Path) -> tuple[Path, Path]:
 
 
 def test_rfc8032_test_1_through_our_key_files(tmp_path: Path) -> None:
-    from runner.ledger import _load_private_key, _load_public_key
+    from lotproof.runner.record.ledger import _load_private_key, _load_public_key
 
     private, public = _rfc_keys(tmp_path)
     key = _load_private_key(private)

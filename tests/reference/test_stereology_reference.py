@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 
-from steps import REGISTRY
+from lotproof.steps import REGISTRY
 
 MEASURE = REGISTRY["measure"]
 

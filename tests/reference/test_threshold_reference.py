@@ -15,7 +15,7 @@ import pytest
 import skimage.data
 import skimage.filters
 
-from steps.threshold import FLOAT_NBINS, ThresholdParams, threshold
+from lotproof.steps.threshold import FLOAT_NBINS, ThresholdParams, threshold
 
 SPACING = (1.0, 1.0)
 

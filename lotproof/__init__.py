@@ -1,0 +1,32 @@
+"""lotproof: reproducible image quality control for production labs.
+
+The Python API behind every command, for notebooks and scripts::
+
+    from lotproof import load_recipe, run_lot
+    recipe = load_recipe("recipes/filter-disc-porosity.yaml")
+    summary = run_lot(recipe, "demo_run/FD-2611", "runs")
+    summary.verdicts.lot          # 'pass' | 'fail' | 'incomplete'
+
+The package has two parts: :mod:`lotproof.steps`, the library of step kinds (pure
+functions on numpy arrays), and :mod:`lotproof.runner`, the machinery that runs a
+recipe over a lot and writes the run record. In the repository they are the
+top-level folders ``steps/`` and ``runner/``.
+"""
+
+from lotproof.runner import __version__
+from lotproof.runner.errors import InputError, LotproofError, Problem, RecipeError
+from lotproof.runner.jobs.run import RunSummary, run_lot
+from lotproof.runner.recipe.model import Recipe, load_recipe, parse_recipe
+
+__all__ = [
+    "InputError",
+    "LotproofError",
+    "Problem",
+    "Recipe",
+    "RecipeError",
+    "RunSummary",
+    "__version__",
+    "load_recipe",
+    "parse_recipe",
+    "run_lot",
+]

@@ -1,0 +1,256 @@
+"""Commands on run records: ``verify``, ``keygen``, ``export``, ``diff``, ``compare``.
+
+Registered on the ``lotproof`` group of :mod:`lotproof.runner.cli.main` when this module is
+imported. Each is a thin shell over :mod:`lotproof.runner.record.ledger`, :mod:`lotproof.runner.record.export`,
+:mod:`lotproof.runner.recipe.diff` and :mod:`lotproof.runner.record.compare`.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any
+
+import click
+from rich.table import Table as RichTable
+from rich.text import Text
+
+from lotproof.runner.cli.main import _emit_json, _err, _fail_recipe, _mark, _out, cli
+from lotproof.runner.errors import EXIT_INVALID, RecipeError
+
+__all__ = ["verify", "keygen_command", "export", "diff", "compare"]
+
+_STATUS_STYLE = {"intact": "green", "altered": "bold red", "unfinished": "yellow"}
+
+
+def _table(title: str, columns: tuple[str, ...]) -> RichTable:
+    # fold long cells onto more lines: a record's numbers and paths are never cut short
+    table = RichTable(title=title, title_justify="left")
+    for column in columns:
+        table.add_column(column, overflow="fold")
+    return table
+
+
+def _number(value: float | None) -> str:
+    from lotproof.runner.record.folder import format_number
+
+    return "-" if value is None else format_number(value)
+
+
+# ---------------------------------------------------------------- verify
+
+
+@cli.command()
+@click.argument("run", type=click.Path(file_okay=False, path_type=Path))
+@click.option("--key", "key", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              help="Ed25519 public key (PEM): check the signature of the seal (seal.sig)")
+@click.option("--seal", "seal", default=None,
+              help="the seal printed at the end of the run: check the record ends in it")
+@click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
+def verify(run: Path, key: Path | None, seal: str | None, as_json: bool) -> None:
+    """Check that RUN's record is intact: the ledger chain, every file, the signature.
+
+    Exit 0 intact; 4 altered (the first failing line or file is named first) or
+    unfinished (the run never ended).
+    """
+    from lotproof.runner.record.ledger import verify_run
+
+    if not run.is_dir():
+        _err().print(Text(f"{run}: no such run folder"))
+        raise SystemExit(EXIT_INVALID)
+    report = verify_run(run, key, expected_seal=seal)
+    if as_json:
+        _emit_json(report.as_dict())
+        raise SystemExit(report.exit_code)
+    console = _out()
+    console.print(Text(report.status.upper(), style=_STATUS_STYLE[report.status])
+                  + Text(f"  {run}"))
+    console.print(f"seal: {report.seal or '-'}")
+    console.print(f"{report.events} ledger events, {report.checked_files} files checked, "
+                  f"signature: {report.signature}")
+    if report.problems:
+        table = _table("problems, first first", ("#", "problem"))
+        for i, problem in enumerate(report.problems, 1):
+            table.add_row(str(i), Text(problem))
+        console.print(table)
+    raise SystemExit(report.exit_code)
+
+
+# ---------------------------------------------------------------- keygen
+
+
+@cli.command("keygen")
+@click.argument("private", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("public", type=click.Path(dir_okay=False, path_type=Path))
+def keygen_command(private: Path, public: Path) -> None:
+    """Make an Ed25519 key pair: PRIVATE (PEM, mode 0600) and PUBLIC (PEM).
+
+    Never overwrites a file. Keep PRIVATE out of run folders; hand PUBLIC to
+    whoever verifies (`lotproof verify RUN --key PUBLIC`).
+    """
+    from lotproof.runner.record.ledger import keygen
+
+    keygen(private, public)
+    _err().print(f"wrote {private} (private, keep it safe) and {public} (public)")
+
+
+# ---------------------------------------------------------------- export
+
+
+@cli.command()
+@click.argument("run", type=click.Path(file_okay=False, exists=True, path_type=Path))
+@click.option("--attestation", is_flag=True, help="an in-toto Statement v1 of the run")
+@click.option("--prov", is_flag=True, help="the run as a W3C PROV-JSON document")
+@click.option("--key", "key", type=click.Path(dir_okay=False, exists=True, path_type=Path),
+              default=None, help="Ed25519 private key (PEM): sign the attestation in a DSSE envelope")
+@click.option("--out", "out", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              help="write to this new file instead of stdout (never overwritten)")
+def export(run: Path, attestation: bool, prov: bool, key: Path | None, out: Path | None) -> None:
+    """Export RUN's record: --attestation (in-toto, signed with --key) or --prov.
+
+    Read from the ledger alone, which must be intact and finished (exit 4 if not).
+    """
+    from lotproof.runner.record.export import dsse_envelope, in_toto_statement, prov_document
+    from lotproof.runner.record.ledger import _inside_run_folder
+
+    if attestation == prov:
+        raise click.UsageError("give exactly one of --attestation and --prov")
+    if key is not None and not attestation:
+        raise click.UsageError("--key signs an attestation; it goes with --attestation")
+    if attestation:
+        document: Any = in_toto_statement(run)
+        if key is not None:
+            document = dsse_envelope(document, key)
+    else:
+        document = prov_document(run)
+    text = json.dumps(document, indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+    if out is None:
+        click.echo(text, nl=False)
+        return
+    if _inside_run_folder(out) is not None:
+        raise click.UsageError(f"{out}: inside a run folder; run folders are never changed")
+    try:
+        with open(out, "x", encoding="utf-8") as handle:
+            handle.write(text)
+    except FileExistsError:
+        raise click.UsageError(f"{out}: exists already; never overwritten") from None
+    _err().print(f"wrote {out}")
+
+
+# ---------------------------------------------------------------- diff
+
+
+def _change_rows(table: RichTable, changes: list[Any]) -> None:
+    for c in changes:
+        table.add_row(Text(c.where), Text(_text(c.a)), Text(_text(c.b)), Text(c.note))
+
+
+def _text(value: Any) -> str:
+    if value is None:
+        return "(none)"
+    if isinstance(value, (list, dict)):
+        return json.dumps(value, ensure_ascii=False)
+    return str(value)
+
+
+@cli.command()
+@click.argument("a")
+@click.argument("b")
+@click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
+def diff(a: str, b: str, as_json: bool) -> None:
+    """Semantic diff of two recipes A and B (files, or PATH@GITREV).
+
+    Steps, parameters (units resolved) and limits; formatting, comments and key
+    order are ignored. Exit 0, or 2 when a recipe is invalid.
+    """
+    from lotproof.runner.recipe.diff import diff_recipes
+
+    try:
+        result = diff_recipes(a, b)
+    except RecipeError as err:
+        _fail_recipe(err, as_json)
+        return
+    if as_json:
+        _emit_json(result.as_dict())
+        return
+    console = _out()
+    console.print(Text(f"{result.a} ({result.a_label}) -> {result.b} ({result.b_label})", style="bold"))
+    for warning in result.warnings:
+        console.print(Text(f"warning: {warning}", style="yellow"))
+    if result.identical:
+        note = " (only comments or layout differ)" if result.bytes_differ else ""
+        console.print(f"identical{note}")
+        return
+    for label, names in (("steps added", result.steps_added), ("steps removed", result.steps_removed),
+                         ("limits added", result.limits_added),
+                         ("limits removed", result.limits_removed)):
+        if names:
+            console.print(f"{label}: " + ", ".join(names))
+    changes = result.top + result.steps_changed + result.limits_changed
+    if changes:
+        table = _table("changed", ("where", "a", "b", "note"))
+        _change_rows(table, changes)
+        console.print(table)
+
+
+# ---------------------------------------------------------------- compare
+
+
+@cli.command()
+@click.argument("run_a", type=click.Path(file_okay=False, exists=True, path_type=Path))
+@click.argument("run_b", type=click.Path(file_okay=False, exists=True, path_type=Path))
+@click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
+def compare(run_a: Path, run_b: Path, as_json: bool) -> None:
+    """Measurement deltas and verdict changes from RUN_A to RUN_B (B - A).
+
+    Exit 0 whatever differs; 3 when a folder is not a readable run folder.
+    """
+    from lotproof.runner.record.compare import compare_runs
+
+    result = compare_runs(run_a, run_b)
+    if as_json:
+        _emit_json(result.as_dict())
+        return
+    console = _out()
+
+    def method(m: dict[str, Any]) -> str:
+        return f"{m.get('name', '?')} r{m.get('revision', '?')}"
+
+    same = "same recipe" if result.same_recipe else "different recipes"
+    console.print(Text(f"{method(result.method_a)} -> {method(result.method_b)} ({same})", style="bold"))
+    console.print(Text("lot verdict: ") + _mark(result.lot_verdict_a) + Text(" -> ")
+                  + _mark(result.lot_verdict_b))
+    for label, names in (("images only in A", result.images_only_a),
+                         ("images only in B", result.images_only_b),
+                         ("values only in A", result.columns_only_a),
+                         ("values only in B", result.columns_only_b),
+                         ("limits only in A", result.limits_only_a),
+                         ("limits only in B", result.limits_only_b)):
+        if names:
+            console.print(Text(f"{label}: " + ", ".join(names), style="yellow"))
+    if result.limits:
+        table = _table("limits", ("limit", "over", "A", "B", "B - A", "verdict A", "verdict B"))
+        for lim in result.limits:
+            unit = "" if lim.unit in ("-", "") else f" {lim.unit}"
+            table.add_row(lim.name, lim.over_b, _number(lim.value_a) + unit,
+                          _number(lim.value_b) + unit, _number(lim.delta),
+                          _mark(lim.verdict_a), _mark(lim.verdict_b))
+        console.print(table)
+    if result.verdict_changes:
+        table = _table("verdict changes", ("image", "what", "A", "B"))
+        for c in result.verdict_changes:
+            table.add_row(c.image, c.what, _mark(c.a), _mark(c.b))
+        console.print(table)
+    changed = result.changed_values
+    if changed:
+        table = _table("values that differ", ("image", "value", "unit", "A", "B", "B - A", "relative"))
+        for v in changed:
+            relative = "-" if v.relative is None else f"{v.relative:+.3%}"
+            table.add_row(v.image, v.column, v.unit, _number(v.a), _number(v.b),
+                          _number(v.absolute), relative)
+        console.print(table)
+    equal = len(result.values) - len(changed)
+    console.print(f"{equal} of {len(result.values)} shared values are equal bit for bit")
+    if result.identical:
+        console.print("identical")
+

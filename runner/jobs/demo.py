@@ -1,0 +1,126 @@
+"""The bundled demo scenarios (``lotproof demo [NAME]``): which recipe runs on which lot.
+
+Each scenario is a recipe from ``recipes/`` and a synthetic lot from
+``demo_run/`` made by a checked-in generator; every scenario writes its run
+folders into ``demo_run/runs/`` (run folder names carry the recipe name, so the
+scenarios never collide). Paths are relative to the source tree the package was
+installed from.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from collections.abc import Mapping
+from types import MappingProxyType
+
+from lotproof.runner.errors import InputError, LotproofError
+
+__all__ = [
+    "Scenario",
+    "SCENARIOS",
+    "DEFAULT_SCENARIO",
+    "DEMO_RECIPE",
+    "DEMO_LOT",
+    "DEMO_OUT",
+    "project_root",
+    "demo_paths",
+]
+
+#: Where every scenario writes its run folders.
+DEMO_OUT = "demo_run/runs"
+
+
+@dataclass(frozen=True)
+class Scenario:
+    """One demo: a recipe, the lot it runs on, and where its run folders go.
+
+    ``recipe``, ``lot`` and ``out`` are paths relative to the project root;
+    ``summary`` is one line for people.
+    """
+
+    name: str
+    recipe: str
+    lot: str
+    out: str
+    summary: str
+
+
+SCENARIOS: Mapping[str, Scenario] = MappingProxyType({
+    s.name: s
+    for s in (
+        Scenario(
+            "filter-disc",
+            "recipes/filter-disc-porosity.yaml",
+            "demo_run/FD-2611",
+            DEMO_OUT,
+            "porosity of sintered bronze filter discs, 2D cross-sections (lot FD-2611)",
+        ),
+        Scenario(
+            "powder",
+            "recipes/powder-size.yaml",
+            "demo_run/powder/PW-2612",
+            DEMO_OUT,
+            "particle size and fines of a gas-atomised powder, touching particles (lot PW-2612)",
+        ),
+        Scenario(
+            "lattice",
+            "recipes/lattice-voids.yaml",
+            "demo_run/lattice/LC-2612",
+            DEMO_OUT,
+            "gas voids in additively made lattice struts, 3D CT volumes",
+        ),
+    )
+})
+
+#: The scenario :func:`demo_paths` gives when called without a name.
+DEFAULT_SCENARIO = "filter-disc"
+
+#: The default scenario's recipe and lot (kept for callers of the first demo).
+DEMO_RECIPE = SCENARIOS[DEFAULT_SCENARIO].recipe
+DEMO_LOT = SCENARIOS[DEFAULT_SCENARIO].lot
+
+
+def project_root() -> Path:
+    """The source tree this package was installed from (an editable install)."""
+    return Path(__file__).resolve().parents[2]  # runner/jobs/demo.py -> the tree
+
+
+def demo_paths(name: str | None = None) -> tuple[Path, Path, Path]:
+    """(recipe, lot, output folder) of the scenario ``name``; an error when they are not there.
+
+    Parameters
+    ----------
+    name : str, optional
+        A key of :data:`SCENARIOS`; without one, :data:`DEFAULT_SCENARIO`.
+
+    Returns
+    -------
+    tuple of Path
+        Absolute paths of the recipe file, the lot folder and the folder that
+        receives the run folders.
+
+    Raises
+    ------
+    LotproofError
+        For an unknown name (exit code 2).
+    InputError
+        When the recipe or the lot is missing (the package was not installed
+        from its source tree; exit code 3).
+    """
+    key = DEFAULT_SCENARIO if name is None else name
+    scenario = SCENARIOS.get(key)
+    if scenario is None:
+        # a wrong name on the command line: exit 2, nothing ran
+        raise LotproofError(
+            f"no demo scenario {key!r}; the scenarios are {', '.join(SCENARIOS)}"
+        )
+    root = project_root()
+    recipe, lot = root / scenario.recipe, root / scenario.lot
+    if not recipe.is_file() or not lot.is_dir():
+        raise InputError(
+            f"the demo {scenario.name!r} needs {scenario.recipe} and {scenario.lot} beside the "
+            f"package (looked in {root}); install lotproof from its source tree with "
+            "`pip install -e .`"
+        )
+    return recipe, lot, root / scenario.out
