@@ -33,9 +33,9 @@ sys.path.insert(0, str(ROOT / "bench"))
 from bench_runner import RECIPE, make_lot  # noqa: E402
 
 from lotproof import load_recipe, run_lot  # noqa: E402
-from lotproof.runner.lot.choose import open_executor  # noqa: E402
 from lotproof.runner.evaluate.cache import NullStore  # noqa: E402
 from lotproof.runner.evaluate.inputs import find_samples  # noqa: E402
+from lotproof.runner.lot.choose import open_executor  # noqa: E402
 from lotproof.runner.lot.local import LocalExecutor  # noqa: E402
 
 WORKERS = 2

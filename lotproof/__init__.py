@@ -16,7 +16,8 @@ top-level folders ``steps/`` and ``runner/``.
 from lotproof.runner import __version__
 from lotproof.runner.errors import InputError, LotproofError, Problem, RecipeError
 from lotproof.runner.jobs.run import RunSummary, run_lot
-from lotproof.runner.recipe.model import Recipe, load_recipe, parse_recipe
+from lotproof.runner.recipe.load import load_recipe, parse_recipe
+from lotproof.runner.recipe.model import Recipe
 
 __all__ = [
     "InputError",

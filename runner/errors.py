@@ -1,4 +1,4 @@
-"""lotproof's errors and exit codes.
+"""lotproof's errors and exit codes: every exit code of every command is defined here.
 
 Every error carries its pieces as attributes (file, line, column, where, what) so
 the CLI, the ``--json`` output and the tests all read the same thing.
@@ -14,7 +14,9 @@ __all__ = [
     "EXIT_INVALID",
     "EXIT_BAD_INPUT",
     "EXIT_INTEGRITY",
+    "EXIT_INTERNAL",
     "EXIT_INTERRUPTED",
+    "EXIT_NO_PDF",
     "LotproofError",
     "Problem",
     "RecipeError",
@@ -32,8 +34,13 @@ EXIT_INVALID = 2
 EXIT_BAD_INPUT = 3
 #: integrity failure (an altered record, a rerun that differs)
 EXIT_INTEGRITY = 4
+#: a bug in lotproof itself (never used for bad data)
+EXIT_INTERNAL = 70
 #: interrupted (Ctrl-C)
 EXIT_INTERRUPTED = 130
+#: ``report --pdf`` could not make the PDF (no Chromium, or it failed); the HTML is the
+#: reproducible artefact either way
+EXIT_NO_PDF = EXIT_BAD_INPUT
 
 
 class LotproofError(Exception):

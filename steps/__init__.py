@@ -6,8 +6,16 @@ recipes, caches, ledgers or files.
 """
 
 from lotproof.steps._data import Output, Table
-from lotproof.steps._registry import DATA_KINDS, REGISTRY, SAME, StepKind, StepParams, get_kind, step
-from lotproof.steps._units import AREA_UNITS, LENGTH_UNITS, Area, Length, resolve_to_px
+from lotproof.steps._registry import (
+    DATA_KINDS,
+    REGISTRY,
+    SAME,
+    StepKind,
+    StepParams,
+    get_kind,
+    step,
+)
+from lotproof.steps.units import AREA_UNITS, LENGTH_UNITS, Area, Length, resolve_to_px
 
 # Importing the family modules registers their step kinds.
 from lotproof.steps import filters, masks, measure, morphology, threshold  # noqa: E402,F401  isort: skip

@@ -34,11 +34,12 @@ import numba
 import numpy as np
 from scipy import ndimage as ndi
 
+from lotproof.steps.connectivity import structure
+
 __all__ = [
     "CROFTON_WEIGHTS_2D",
     "EULER4_WEIGHTS_2D",
     "EULER8_WEIGHTS_2D",
-    "structure_for",
     "label_mask",
     "compact_labels",
     "window_histogram_by_label_2d",
@@ -50,8 +51,6 @@ __all__ = [
     "warm_up",
 ]
 
-#: Rank argument of ``scipy.ndimage.generate_binary_structure`` per connectivity.
-_RANK = {4: 1, 8: 2, 6: 1, 18: 2, 26: 3}
 
 _SQRT2 = np.sqrt(2.0)
 
@@ -108,15 +107,10 @@ EULER4_WEIGHTS_2D: np.ndarray = _euler_weights(+2)
 EULER8_WEIGHTS_2D: np.ndarray = _euler_weights(-2)
 
 
-def structure_for(connectivity: int, ndim: int) -> np.ndarray:
-    """The neighbourhood (bool, 3 x 3 [x 3]) of a connectivity such as 4, 8, 6, 18, 26."""
-    return ndi.generate_binary_structure(ndim, _RANK[connectivity])
-
-
 def label_mask(mask: np.ndarray, connectivity: int) -> tuple[np.ndarray, int]:
     """Connected components of ``mask`` as int32 labels 1..N in raster order, and N."""
     labels = np.zeros(mask.shape, dtype=np.int32)
-    count = ndi.label(mask, structure=structure_for(connectivity, mask.ndim), output=labels)
+    count = ndi.label(mask, structure=structure(connectivity, mask.ndim), output=labels)
     return labels, int(count)
 
 

@@ -9,8 +9,8 @@ from pydantic import Field, model_validator
 from scipy import ndimage
 
 from lotproof.steps._registry import StepParams, step
-from lotproof.steps._units import Length
 from lotproof.steps.footprints import ball, disk
+from lotproof.steps.units import Length
 
 __all__ = [
     "GRAY_WEIGHTS",

@@ -48,7 +48,7 @@ import numpy as np
 from pydantic import Field, model_validator
 
 from lotproof.steps._registry import StepParams
-from lotproof.steps._units import Length
+from lotproof.steps.units import Length
 
 __all__ = [
     "FOOTPRINTS_2D",

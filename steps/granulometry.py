@@ -19,8 +19,8 @@ from pydantic import Field
 from lotproof.steps import _morph
 from lotproof.steps._data import Output, Table
 from lotproof.steps._registry import StepParams, step
-from lotproof.steps._units import Length
 from lotproof.steps.footprints import diamond, disk, square
+from lotproof.steps.units import Length
 
 __all__ = [
     "SPECTRUM_FOOTPRINTS",

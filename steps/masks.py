@@ -15,13 +15,18 @@ from pydantic import Field, model_validator
 from scipy import ndimage
 
 from lotproof.steps._registry import StepParams, step
-from lotproof.steps._units import Area, Volume
+from lotproof.steps.connectivity import (
+    BACKGROUND_CONNECTIVITY,
+    CONNECTIVITIES,
+    DEFAULT_CONNECTIVITY,
+    Connectivity,
+    resolve_connectivity,
+    structure,
+)
+from lotproof.steps.units import Area, Volume
 
 __all__ = [
-    "CONNECTIVITIES",
     "COMBINE_METHODS",
-    "DEFAULT_CONNECTIVITY",
-    "BACKGROUND_CONNECTIVITY",
     "InvertParams",
     "FillHolesParams",
     "RemoveSmallParams",
@@ -34,52 +39,16 @@ __all__ = [
     "combine",
 ]
 
-#: Connectivities per mask dimension.
-CONNECTIVITIES: dict[int, tuple[int, ...]] = {2: (4, 8), 3: (6, 18, 26)}
-
-#: Connectivity used when a step leaves it out: the full neighbourhood.
-DEFAULT_CONNECTIVITY: dict[int, int] = {2: 8, 3: 26}
-
-#: The background connectivity that goes with an object connectivity, so that
-#: objects and background do not cross each other at corners (8 with 4 in 2D,
-#: 26 with 6 in 3D; 18 goes with 6).
-BACKGROUND_CONNECTIVITY: dict[int, int] = {4: 8, 8: 4, 6: 26, 18: 6, 26: 6}
-
 #: Ways ``combine`` joins masks.
 COMBINE_METHODS: tuple[str, ...] = ("and", "or", "xor", "minus")
-
-_ALL_CONNECTIVITIES = (4, 8, 6, 18, 26)
-
-_CONNECTIVITY_DESCRIPTION = (
-    "neighbours that join pixels into one object: 4 or 8 in 2D, 6, 18 or 26 in 3D; "
-    "default 8 in 2D, 26 in 3D"
-)
-
 
 def _check_mask(mask: np.ndarray, what: str) -> None:
     if mask.dtype != np.bool_:
         raise ValueError(f"{what} needs a bool mask, got dtype {mask.dtype}")
 
 
-def _structure(connectivity: int | None, ndim: int) -> np.ndarray:
-    """The scipy.ndimage structuring element of ``connectivity`` in ``ndim`` dimensions."""
-    if ndim not in CONNECTIVITIES:
-        raise ValueError(f"masks must be 2D or 3D, got {ndim}D")
-    if connectivity is None:
-        connectivity = DEFAULT_CONNECTIVITY[ndim]
-    allowed = CONNECTIVITIES[ndim]
-    if connectivity not in allowed:
-        raise ValueError(
-            f"connectivity {connectivity} does not exist in {ndim}D; "
-            f"a {ndim}D mask takes {' or '.join(map(str, allowed))}"
-        )
-    # 4/6 = neighbours at squared distance 1, 8/18 = up to 2, 26 = up to 3
-    rank = allowed.index(connectivity) + 1
-    return ndimage.generate_binary_structure(ndim, rank)
-
-
 def _label(mask: np.ndarray, connectivity: int | None) -> tuple[np.ndarray, int]:
-    labels, count = ndimage.label(mask, structure=_structure(connectivity, mask.ndim))
+    labels, count = ndimage.label(mask, structure=structure(connectivity, mask.ndim))
     return labels, int(count)
 
 
@@ -127,7 +96,7 @@ def invert(params: InvertParams, mask: np.ndarray, *, spacing: tuple[float, ...]
 class FillHolesParams(StepParams):
     """Parameters of ``fill-holes``."""
 
-    connectivity: Literal[_ALL_CONNECTIVITIES] | None = Field(
+    connectivity: Literal[CONNECTIVITIES] | None = Field(  # type: ignore[valid-type]
         None,
         description=(
             "connectivity of the objects: 4 or 8 in 2D, 6, 18 or 26 in 3D; default 8 in 2D, "
@@ -189,7 +158,7 @@ def fill_holes(
     """
     _check_mask(mask, "fill-holes")
     objects = params.connectivity
-    _structure(objects, mask.ndim)  # a wrong connectivity for the dimension is an error
+    resolve_connectivity(objects, mask.ndim)  # a wrong connectivity for the dimension is an error
     if objects is None:
         objects = DEFAULT_CONNECTIVITY[mask.ndim]
     background, count = _label(~mask, BACKGROUND_CONNECTIVITY[objects])
@@ -219,9 +188,7 @@ class RemoveSmallParams(StepParams):
             "min_volume"
         ),
     )
-    connectivity: Literal[_ALL_CONNECTIVITIES] | None = Field(
-        None, description=_CONNECTIVITY_DESCRIPTION
-    )
+    connectivity: Connectivity = None
 
     @model_validator(mode="after")
     def _one_minimum(self) -> RemoveSmallParams:
@@ -312,9 +279,7 @@ def remove_small(
 class ClearBorderParams(StepParams):
     """Parameters of ``clear-border``."""
 
-    connectivity: Literal[_ALL_CONNECTIVITIES] | None = Field(
-        None, description=_CONNECTIVITY_DESCRIPTION
-    )
+    connectivity: Connectivity = None
 
 
 @step(

@@ -24,7 +24,7 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping
 from types import MappingProxyType
-from typing import Annotated, Literal
+from typing import Literal
 
 import numpy as np
 from pydantic import Field
@@ -34,11 +34,9 @@ from lotproof.steps import _measure_kernels as _k
 from lotproof.steps._data import Output, Table
 from lotproof.steps._measure3d import OBJECT_COLUMNS_3D, VOLUME_VALUES
 from lotproof.steps._registry import StepParams, step
+from lotproof.steps.connectivity import Connectivity, resolve_connectivity
 
 __all__ = [
-    "CONNECTIVITY_2D",
-    "CONNECTIVITY_3D",
-    "CONNECTIVITIES",
     "BORDER_RULES",
     "IMAGE_VALUES",
     "VOLUME_VALUES",
@@ -55,15 +53,7 @@ __all__ = [
     "label",
     "measure",
     "phase_fraction",
-    "resolve_connectivity",
 ]
-
-#: Pixel connectivities of 2D data: edge neighbours (4) or edge and corner neighbours (8).
-CONNECTIVITY_2D: tuple[int, ...] = (4, 8)
-#: Voxel connectivities of 3D data: faces (6), faces and edges (18), all neighbours (26).
-CONNECTIVITY_3D: tuple[int, ...] = (6, 18, 26)
-#: Every accepted value of a ``connectivity`` parameter.
-CONNECTIVITIES: tuple[int, ...] = CONNECTIVITY_2D + CONNECTIVITY_3D
 
 #: How ``measure`` treats objects cut by the image frame in its size statistics:
 #: include every object, or exclude those touching the frame.
@@ -187,17 +177,6 @@ COLUMN_DEFINITIONS_3D: Mapping[str, str] = MappingProxyType({
     "touches_border": "1 if a voxel of the object lies on the volume's frame, else 0",
 })
 
-Connectivity = Annotated[
-    Literal[CONNECTIVITIES] | None,  # type: ignore[valid-type]
-    Field(
-        description=(
-            "which neighbours join pixels into one object: 4 or 8 in 2D, 6, 18 or 26 in 3D; "
-            "empty (null) means full connectivity: 8 in 2D, 26 in 3D"
-        )
-    ),
-]
-
-
 class LabelParams(StepParams):
     """Parameters of ``label``."""
 
@@ -215,25 +194,6 @@ class MeasureParams(StepParams):
         "in the area / volume fraction and in stereology; size_count says how many were "
         "sized). Default include",
     )
-
-
-def resolve_connectivity(connectivity: int | None, ndim: int) -> int:
-    """The connectivity to use on ``ndim``-dimensional data (``None``: 8 in 2D, 26 in 3D).
-
-    Raises ``ValueError`` for a connectivity of the other dimension (4 on a volume,
-    26 on an image) or for data that is neither 2D nor 3D.
-    """
-    allowed = {2: CONNECTIVITY_2D, 3: CONNECTIVITY_3D}.get(ndim)
-    if allowed is None:
-        raise ValueError(f"connected components need 2D or 3D data (got {ndim}D)")
-    if connectivity is None:
-        return allowed[-1]
-    if connectivity not in allowed:
-        raise ValueError(
-            f"connectivity {connectivity} does not apply to {ndim}D data; "
-            f"use one of {', '.join(map(str, allowed))}"
-        )
-    return connectivity
 
 
 @step(

@@ -21,8 +21,8 @@ from skimage.morphology import local_maxima, reconstruction
 from skimage.segmentation import watershed
 
 from lotproof.steps._registry import StepParams, step
-from lotproof.steps._units import Length
-from lotproof.steps.measure import CONNECTIVITIES, resolve_connectivity
+from lotproof.steps.connectivity import CONNECTIVITIES, resolve_connectivity, structure
+from lotproof.steps.units import Length
 
 __all__ = [
     "SplitParams",
@@ -30,10 +30,6 @@ __all__ = [
     "distance_markers",
     "raster_relabel",
 ]
-
-#: ``scipy.ndimage.generate_binary_structure`` rank of each connectivity.
-_RANK: dict[int, int] = {4: 1, 8: 2, 6: 1, 18: 2, 26: 3}
-
 
 class SplitParams(StepParams):
     """Parameters of ``split-touching``."""
@@ -325,8 +321,8 @@ def split_touching(
     if not mask.any():
         return np.zeros(mask.shape, dtype=np.int32)
 
-    structure = ndi.generate_binary_structure(mask.ndim, _RANK[connectivity])
-    regions, _ = ndi.label(mask, structure=structure)
+    neighbours = structure(connectivity, mask.ndim)
+    regions, _ = ndi.label(mask, structure=neighbours)
     if mask.all():
         # no background: the distance is unbounded, and the one region is one object
         return regions.astype(np.int32)
@@ -337,7 +333,7 @@ def split_touching(
     relief = reconstruction(distance - depth_um, distance, method="dilation", footprint=full)
     markers = distance_markers(distance, relief, regions, separation_um, sizes)
     flooded = watershed(
-        -distance, markers, connectivity=structure, mask=mask, compactness=0.0,
+        -distance, markers, connectivity=neighbours, mask=mask, compactness=0.0,
         watershed_line=False,
     )
     return raster_relabel(flooded)

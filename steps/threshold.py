@@ -32,8 +32,8 @@ from pydantic import Field, model_validator
 from lotproof.steps import _threshold_kernels as _tk
 from lotproof.steps._data import Output
 from lotproof.steps._registry import StepParams, step
-from lotproof.steps._units import Length
 from lotproof.steps.footprints import nearest_odd
+from lotproof.steps.units import Length
 
 __all__ = [
     "THRESHOLD_METHODS",

@@ -30,7 +30,7 @@ import tifffile
 
 from lotproof.runner.cli.main import main
 from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INVALID, EXIT_OK, RecipeError
-from lotproof.runner.recipe.model import load_recipe
+from lotproof.runner.recipe.load import load_recipe
 
 FOLDER = Path(__file__).parent / "bad_inputs" / "recipes"
 SIDECAR = FOLDER / "EXPECTED.json"

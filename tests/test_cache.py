@@ -18,10 +18,16 @@ import pytest
 import tifffile
 
 from lotproof import load_recipe, run_lot
-from lotproof.runner.evaluate.cache import DiskStore, NullStore, default_cache_dir
 from lotproof.runner.cli.main import main
-from lotproof.runner.evaluate.hashing import content_checksum, hash_array, input_key, library_versions, step_key
-from lotproof.runner.recipe.model import parse_recipe
+from lotproof.runner.evaluate.cache import DiskStore, NullStore, default_cache_dir
+from lotproof.runner.evaluate.hashing import (
+    content_checksum,
+    hash_array,
+    input_key,
+    library_versions,
+    step_key,
+)
+from lotproof.runner.recipe.load import parse_recipe
 from lotproof.steps import REGISTRY, Output, Table, resolve_to_px
 
 RECIPE = """\

@@ -12,8 +12,8 @@ import tifffile
 import lotproof.runner.cli.record  # noqa: F401 - registers the record commands
 from lotproof import run_lot
 from lotproof.runner.cli.main import main
-from lotproof.runner.record.compare import ValueDelta, compare_runs
 from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_OK, InputError
+from lotproof.runner.record.compare import ValueDelta, compare_runs
 
 RECIPE = """\
 format: lotproof/1

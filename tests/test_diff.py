@@ -10,8 +10,8 @@ import pytest
 
 import lotproof.runner.cli.record  # noqa: F401 - registers the record commands
 from lotproof.runner.cli.main import main
-from lotproof.runner.recipe.diff import diff_recipes
 from lotproof.runner.errors import EXIT_INVALID, EXIT_OK, RecipeError
+from lotproof.runner.recipe.diff import diff_recipes
 
 BASE = """\
 format: lotproof/1

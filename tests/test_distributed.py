@@ -27,9 +27,10 @@ from pydantic import Field
 distributed = pytest.importorskip("distributed")
 
 from lotproof import load_recipe, run_lot  # noqa: E402
-from lotproof.runner.lot.choose import EXECUTOR_KINDS, ExecutorError, make_executor, open_executor  # noqa: E402
-from lotproof.runner.evaluate.cache import DiskStore  # noqa: E402
 from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_OK  # noqa: E402
+from lotproof.runner.evaluate.cache import DiskStore  # noqa: E402
+from lotproof.runner.lot.base import ExecutorError  # noqa: E402
+from lotproof.runner.lot.choose import EXECUTOR_KINDS, make_executor, open_executor  # noqa: E402
 from lotproof.runner.lot.local import LocalExecutor  # noqa: E402
 from lotproof.steps import REGISTRY, StepParams, step  # noqa: E402
 
@@ -398,8 +399,8 @@ def test_an_unreachable_scheduler_is_an_executor_error() -> None:
 
 
 def test_a_worker_with_other_software_analyses_nothing() -> None:
-    from lotproof.runner.lot.cluster import _analyse_on_worker, software_fingerprint
     from lotproof.runner.evaluate.inputs import Sample
+    from lotproof.runner.lot.cluster import _analyse_on_worker, software_fingerprint
 
     other = software_fingerprint()
     other["libraries"] = {**other["libraries"], "numpy": "0.0.1"}

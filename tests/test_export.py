@@ -25,7 +25,10 @@ from lotproof.runner.record.export import (
     pae,
     prov_document,
 )
-from lotproof.runner.record.ledger import LEDGER_FILE, LedgerError, canonical, keygen, read_ledger, verify_run
+from lotproof.runner.record.layout import LEDGER_FILE
+from lotproof.runner.record.ledger import LedgerError, canonical, read_ledger
+from lotproof.runner.record.signing import keygen
+from lotproof.runner.record.verify import verify_run
 
 
 @pytest.fixture(scope="module")

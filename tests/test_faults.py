@@ -28,11 +28,12 @@ import numpy as np
 import pytest
 import tifffile
 
-from lotproof.runner.evaluate.cache import DiskStore
 from lotproof.runner.cli.main import main
 from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INTEGRITY, EXIT_LIMIT_FAILED
-from lotproof.runner.record.ledger import LEDGER_FILE, verify_run
+from lotproof.runner.evaluate.cache import DiskStore
 from lotproof.runner.jobs.run import run_lot
+from lotproof.runner.record.layout import LEDGER_FILE
+from lotproof.runner.record.verify import verify_run
 
 RECIPE = """\
 format: lotproof/1

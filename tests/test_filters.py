@@ -12,7 +12,6 @@ from hypothesis.extra import numpy as hnp
 from pydantic import ValidationError
 
 from lotproof.steps import REGISTRY
-from lotproof.steps._units import Length
 from lotproof.steps.filters import (
     GAUSSIAN_TRUNCATE,
     GRAY_WEIGHTS,
@@ -22,6 +21,7 @@ from lotproof.steps.filters import (
     gray,
     smooth,
 )
+from lotproof.steps.units import Length
 
 SPACING = (1.0, 1.0)
 

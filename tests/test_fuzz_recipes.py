@@ -20,7 +20,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from lotproof.runner.errors import RecipeError
-from lotproof.runner.recipe.model import Recipe, parse_recipe
+from lotproof.runner.recipe.load import parse_recipe
+from lotproof.runner.recipe.model import Recipe
 
 VALID = """\
 format: lotproof/1

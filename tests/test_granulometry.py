@@ -13,7 +13,6 @@ from pydantic import ValidationError
 
 from lotproof.runner.evaluate.image import resolve_params
 from lotproof.steps import REGISTRY, Output, Table
-from lotproof.steps._units import Length
 from lotproof.steps.granulometry import (
     MAX_RADII,
     SPECTRUM_COLUMNS,
@@ -23,6 +22,7 @@ from lotproof.steps.granulometry import (
     size_spectrum,
     spectrum_radii,
 )
+from lotproof.steps.units import Length
 
 
 def spectrum(mask, max_radius, step=1.0, footprint="disk", spacing=(1.0, 1.0)) -> Output:

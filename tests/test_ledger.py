@@ -20,25 +20,20 @@ import lotproof.runner.cli.record  # noqa: F401 - registers verify, keygen, expo
 from lotproof import __version__, run_lot
 from lotproof.runner.cli.main import main
 from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INTEGRITY, EXIT_INVALID, EXIT_OK
+from lotproof.runner.recipe.git import git_info
+from lotproof.runner.record.layout import LEDGER_FILE, SIGNATURE_FILE, SUMS_FILE
 from lotproof.runner.record.ledger import (
     GENESIS,
-    LEDGER_FILE,
-    SIGNATURE_FILE,
-    SUMS_FILE,
     LedgerError,
     LedgerWriteError,
     LedgerWriter,
-    SigningError,
     canonical,
-    git_info,
-    keygen,
     line_hash,
     read_ledger,
-    sign_seal,
-    verify_run,
     write_sha256sums,
-    write_signature,
 )
+from lotproof.runner.record.signing import SigningError, keygen, sign_seal, write_signature
+from lotproof.runner.record.verify import verify_run
 
 RECIPE = """\
 format: lotproof/1
@@ -509,7 +504,7 @@ def test_sign_seal_refuses_what_is_not_a_seal(keys: tuple[Path, Path]) -> None:
 # ---------------------------------------------------------------- git
 
 
-def _git(repo: Path, *args: str) -> str:
+def run_git(repo: Path, *args: str) -> str:
     done = subprocess.run(
         ["git", "-C", str(repo), "-c", "user.name=t", "-c", "user.email=t@t",
          "-c", "commit.gpgsign=false", *args],
@@ -522,15 +517,15 @@ def _git(repo: Path, *args: str) -> str:
 def repo(tmp_path: Path) -> Path:
     repo = tmp_path / "methods"
     (repo / "recipes").mkdir(parents=True)
-    _git(repo, "init", "-q")
+    run_git(repo, "init", "-q")
     (repo / "recipes" / "a.yaml").write_text(RECIPE)
-    _git(repo, "add", "recipes/a.yaml")
-    _git(repo, "commit", "-q", "-m", "first")
+    run_git(repo, "add", "recipes/a.yaml")
+    run_git(repo, "commit", "-q", "-m", "first")
     return repo
 
 
 def test_git_info_clean_modified_untracked(repo: Path, tmp_path: Path) -> None:
-    head = _git(repo, "rev-parse", "HEAD")
+    head = run_git(repo, "rev-parse", "HEAD")
     recipe = repo / "recipes" / "a.yaml"
     assert git_info(recipe) == {"commit": head, "path_in_repo": "recipes/a.yaml", "modified": False}
     recipe.write_text(RECIPE.replace("revision: 2", "revision: 3"))
@@ -544,7 +539,7 @@ def test_git_info_clean_modified_untracked(repo: Path, tmp_path: Path) -> None:
 
 
 def test_git_info_in_a_repository_without_commits(tmp_path: Path) -> None:
-    _git(tmp_path, "init", "-q")
+    run_git(tmp_path, "init", "-q")
     (tmp_path / "r.yaml").write_text(RECIPE)
     assert git_info(tmp_path / "r.yaml") == {"commit": None, "path_in_repo": "r.yaml", "modified": True}
 

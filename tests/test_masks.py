@@ -10,11 +10,9 @@ from hypothesis.extra import numpy as hnp
 from pydantic import ValidationError
 
 from lotproof.steps import REGISTRY
-from lotproof.steps._units import Area
+from lotproof.steps.connectivity import BACKGROUND_CONNECTIVITY, CONNECTIVITY_2D, CONNECTIVITY_3D
 from lotproof.steps.masks import (
-    BACKGROUND_CONNECTIVITY,
     COMBINE_METHODS,
-    CONNECTIVITIES,
     ClearBorderParams,
     CombineParams,
     FillHolesParams,
@@ -26,6 +24,7 @@ from lotproof.steps.masks import (
     invert,
     remove_small,
 )
+from lotproof.steps.units import Area
 
 SPACING = (1.0, 1.0)
 
@@ -71,7 +70,7 @@ def test_registration():
 
 
 def test_connectivity_values():
-    assert CONNECTIVITIES == {2: (4, 8), 3: (6, 18, 26)}
+    assert CONNECTIVITY_2D == (4, 8) and CONNECTIVITY_3D == (6, 18, 26)
     with pytest.raises(ValidationError, match="26"):
         FillHolesParams(connectivity=5)
     assert ClearBorderParams().connectivity is None
@@ -84,14 +83,14 @@ def test_connectivity_values():
             fill_holes,
             FillHolesParams(connectivity=6),
             (3, 3),
-            "connectivity 6 does not exist in 2D",
+            "connectivity 6 does not apply to 2D data",
         ),
-        (clear_border, ClearBorderParams(connectivity=26), (3, 3), "a 2D mask takes 4 or 8"),
+        (clear_border, ClearBorderParams(connectivity=26), (3, 3), "use one of 4, 8$"),
         (
             remove_small,
             RemoveSmallParams(min_area="2 px2", connectivity=8),
             (2, 3, 3),
-            "a 3D mask takes 6 or 18 or 26",
+            "use one of 6, 18, 26$",
         ),
     ],
 )

@@ -13,17 +13,19 @@ from hypothesis.extra import numpy as hnp
 from pydantic import ValidationError
 
 from lotproof.steps import Output, Table, get_kind
-from lotproof.steps.measure import (
+from lotproof.steps.connectivity import (
     CONNECTIVITIES,
     CONNECTIVITY_2D,
     CONNECTIVITY_3D,
+    resolve_connectivity,
+)
+from lotproof.steps.measure import (
     IMAGE_VALUES,
     OBJECT_COLUMNS,
     LabelParams,
     MeasureParams,
     label,
     measure,
-    resolve_connectivity,
 )
 
 INT_COLUMNS = ("label", "euler_number", "touches_border")

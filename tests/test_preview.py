@@ -12,11 +12,17 @@ from PIL import Image
 from scipy import ndimage
 
 import lotproof.runner.cli.show  # noqa: F401  registers report and preview on the cli group
-from lotproof.runner.evaluate.cache import DiskStore
 from lotproof.runner.cli.main import main
+from lotproof.runner.evaluate.cache import DiskStore
 from lotproof.runner.evaluate.pictures import label_colours
-from lotproof.runner.show.preview import SIDECAR_FORMAT, TILE_SIDE, PreviewError, make_preview, write_preview
-from lotproof.runner.recipe.model import load_recipe
+from lotproof.runner.recipe.load import load_recipe
+from lotproof.runner.show.preview import (
+    SIDECAR_FORMAT,
+    TILE_SIDE,
+    PreviewError,
+    make_preview,
+    write_preview,
+)
 
 RECIPE = """\
 format: lotproof/1

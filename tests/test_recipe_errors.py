@@ -8,7 +8,7 @@ import pytest
 
 from lotproof.runner.cli.main import main
 from lotproof.runner.errors import EXIT_INVALID, RecipeError
-from lotproof.runner.recipe.model import load_recipe
+from lotproof.runner.recipe.load import load_recipe
 
 BASE = """\
 format: lotproof/1

@@ -7,7 +7,9 @@ import subprocess
 import sys
 from pathlib import Path
 
-from reliability_table import readme_section  # tests/ is on sys.path under pytest's rootdir
+from reliability_table import (
+    readme_section,  # tests/ is on sys.path under pytest's rootdir
+)
 
 ROOT = Path(__file__).resolve().parents[1]
 

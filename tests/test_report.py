@@ -20,10 +20,10 @@ import lotproof.runner.cli.show  # noqa: F401  registers report and preview on t
 from lotproof import run_lot
 from lotproof.runner.cli.main import main
 from lotproof.runner.errors import RunFolderError
-from lotproof.runner.record.ledger import LEDGER_FILE, SUMS_FILE, verify_run
 from lotproof.runner.record.folder import CAUTION
+from lotproof.runner.record.layout import LEDGER_FILE, REPORT_FILE, SUMS_FILE
+from lotproof.runner.record.verify import verify_run
 from lotproof.runner.show.report import (
-    REPORT_FILE,
     VERDICT_MARKS,
     _bin_edges,
     _num,

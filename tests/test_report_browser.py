@@ -19,7 +19,7 @@ from PIL import Image
 import lotproof.runner.cli.show  # noqa: F401  registers report and preview on the cli group
 from lotproof import run_lot
 from lotproof.runner.cli.main import main
-from lotproof.runner.cli.show import chromium_command, find_chromium
+from lotproof.runner.show.pdf import chromium_command, find_chromium
 from lotproof.runner.show.report import rebuild_report
 
 RECIPE = """\

@@ -12,11 +12,12 @@ import tifffile
 
 import lotproof.runner.jobs.rerun as rerun_module
 from lotproof import run_lot
-from lotproof.runner.evaluate.cache import DiskStore
 from lotproof.runner.cli.main import main
 from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INTEGRITY
-from lotproof.runner.record.ledger import read_ledger, verify_run
+from lotproof.runner.evaluate.cache import DiskStore
 from lotproof.runner.jobs.rerun import RerunRefused, rerun
+from lotproof.runner.record.ledger import read_ledger
+from lotproof.runner.record.verify import verify_run
 from lotproof.steps import REGISTRY
 
 RECIPE = """\

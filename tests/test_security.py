@@ -24,14 +24,22 @@ import tifffile
 import yaml
 
 import lotproof.runner.evaluate.inputs as inputs_module
-from lotproof.runner.evaluate.cache import _MAX_HEADER, DiskStore
 from lotproof.runner.cli.main import main
-from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INVALID, EXIT_LIMIT_FAILED, EXIT_OK, InputError, RecipeError
+from lotproof.runner.errors import (
+    EXIT_BAD_INPUT,
+    EXIT_INVALID,
+    EXIT_LIMIT_FAILED,
+    EXIT_OK,
+    InputError,
+    RecipeError,
+)
+from lotproof.runner.evaluate.cache import _MAX_HEADER, DiskStore
 from lotproof.runner.evaluate.inputs import MAX_FILE_BYTES, read_image
-from lotproof.runner.record.ledger import verify_run
-from lotproof.runner.record.folder import _kept_name, create_run_folder
-from lotproof.runner.recipe.model import load_recipe, parse_recipe
+from lotproof.runner.recipe.load import load_recipe, parse_recipe
 from lotproof.runner.recipe.yamlpos import MAX_RECIPE_BYTES, _StrictLoader
+from lotproof.runner.record.folder import create_run_folder
+from lotproof.runner.record.layout import image_folder
+from lotproof.runner.record.verify import verify_run
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -265,7 +273,7 @@ def test_run_folder_names_are_sanitised(tmp_path: Path, capsys: pytest.CaptureFi
     assert all(c.isalnum() or c in "._-" for c in run.name), run.name
     # image ids become file names below kept/ and figures/ without leaving them
     for image_id in ("../../etc/passwd", "a/../../b.tif", "/abs.tif", "we ird;$(x).tif", ".."):
-        name = _kept_name(image_id)
+        name = image_folder(image_id)
         assert ".." not in name.split("/") and not name.startswith("/"), name
         assert all(c.isalnum() or c in "._-/" for c in name), name
 

@@ -12,8 +12,8 @@ from scipy import ndimage
 
 from lotproof.runner.evaluate.image import resolve_params
 from lotproof.steps import REGISTRY
-from lotproof.steps._units import Length
 from lotproof.steps.segmentation import SplitParams, raster_relabel, split_touching
+from lotproof.steps.units import Length
 
 SPACING = (1.0, 1.0)
 

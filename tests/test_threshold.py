@@ -11,7 +11,6 @@ from pydantic import ValidationError
 
 from lotproof.steps import REGISTRY
 from lotproof.steps._data import Output
-from lotproof.steps._units import Length
 from lotproof.steps.threshold import (
     FLOAT_NBINS,
     THRESHOLD_FEATURES,
@@ -19,6 +18,7 @@ from lotproof.steps.threshold import (
     ThresholdParams,
     threshold,
 )
+from lotproof.steps.units import Length
 
 SPACING = (1.0, 1.0)
 AUTOMATIC = tuple(m for m in THRESHOLD_METHODS if m not in ("fixed", "local"))

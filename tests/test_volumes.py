@@ -15,7 +15,6 @@ from lotproof.runner.errors import RecipeError
 from lotproof.runner.evaluate.image import resolve_params
 from lotproof.runner.evaluate.inputs import read_image
 from lotproof.steps import REGISTRY
-from lotproof.steps._units import Area, Length, Volume, resolve_for_spacing, resolve_to_px
 from lotproof.steps.footprints import MorphologyParams, build_footprint
 from lotproof.steps.masks import RemoveSmallParams, remove_small
 from lotproof.steps.measure import (
@@ -31,6 +30,13 @@ from lotproof.steps.measure import (
     PhaseFractionParams,
     measure,
     phase_fraction,
+)
+from lotproof.steps.units import (
+    Area,
+    Length,
+    Volume,
+    resolve_for_spacing,
+    resolve_to_px,
 )
 
 VOLUME = (np.arange(6 * 8 * 10) % 200).astype(np.uint8).reshape(6, 8, 10)

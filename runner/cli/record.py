@@ -1,7 +1,6 @@
 """Commands on run records: ``verify``, ``keygen``, ``export``, ``diff``, ``compare``.
 
-Registered on the ``lotproof`` group of :mod:`lotproof.runner.cli.main` when this module is
-imported. Each is a thin shell over :mod:`lotproof.runner.record.ledger`, :mod:`lotproof.runner.record.export`,
+Each is a thin shell over :mod:`lotproof.runner.record.ledger`, :mod:`lotproof.runner.record.export`,
 :mod:`lotproof.runner.recipe.diff` and :mod:`lotproof.runner.record.compare`.
 """
 
@@ -15,8 +14,10 @@ import click
 from rich.table import Table as RichTable
 from rich.text import Text
 
-from lotproof.runner.cli.main import _emit_json, _err, _fail_recipe, _mark, _out, cli
+from lotproof.runner.cli.console import emit_json, fail_recipe, mark, stderr, stdout
 from lotproof.runner.errors import EXIT_INVALID, RecipeError
+from lotproof.runner.files import write_file
+from lotproof.runner.record.layout import inside_run_folder
 
 __all__ = ["verify", "keygen_command", "export", "diff", "compare"]
 
@@ -40,7 +41,7 @@ def _number(value: float | None) -> str:
 # ---------------------------------------------------------------- verify
 
 
-@cli.command()
+@click.command()
 @click.argument("run", type=click.Path(file_okay=False, path_type=Path))
 @click.option("--key", "key", type=click.Path(dir_okay=False, path_type=Path), default=None,
               help="Ed25519 public key (PEM): check the signature of the seal (seal.sig)")
@@ -53,16 +54,16 @@ def verify(run: Path, key: Path | None, seal: str | None, as_json: bool) -> None
     Exit 0 intact; 4 altered (the first failing line or file is named first) or
     unfinished (the run never ended).
     """
-    from lotproof.runner.record.ledger import verify_run
+    from lotproof.runner.record.verify import verify_run
 
     if not run.is_dir():
-        _err().print(Text(f"{run}: no such run folder"))
+        stderr().print(Text(f"{run}: no such run folder"))
         raise SystemExit(EXIT_INVALID)
     report = verify_run(run, key, expected_seal=seal)
     if as_json:
-        _emit_json(report.as_dict())
+        emit_json(report.as_dict())
         raise SystemExit(report.exit_code)
-    console = _out()
+    console = stdout()
     console.print(Text(report.status.upper(), style=_STATUS_STYLE[report.status])
                   + Text(f"  {run}"))
     console.print(f"seal: {report.seal or '-'}")
@@ -79,7 +80,7 @@ def verify(run: Path, key: Path | None, seal: str | None, as_json: bool) -> None
 # ---------------------------------------------------------------- keygen
 
 
-@cli.command("keygen")
+@click.command("keygen")
 @click.argument("private", type=click.Path(dir_okay=False, path_type=Path))
 @click.argument("public", type=click.Path(dir_okay=False, path_type=Path))
 def keygen_command(private: Path, public: Path) -> None:
@@ -88,16 +89,16 @@ def keygen_command(private: Path, public: Path) -> None:
     Never overwrites a file. Keep PRIVATE out of run folders; hand PUBLIC to
     whoever verifies (`lotproof verify RUN --key PUBLIC`).
     """
-    from lotproof.runner.record.ledger import keygen
+    from lotproof.runner.record.signing import keygen
 
     keygen(private, public)
-    _err().print(f"wrote {private} (private, keep it safe) and {public} (public)")
+    stderr().print(f"wrote {private} (private, keep it safe) and {public} (public)")
 
 
 # ---------------------------------------------------------------- export
 
 
-@cli.command()
+@click.command()
 @click.argument("run", type=click.Path(file_okay=False, exists=True, path_type=Path))
 @click.option("--attestation", is_flag=True, help="an in-toto Statement v1 of the run")
 @click.option("--prov", is_flag=True, help="the run as a W3C PROV-JSON document")
@@ -110,8 +111,11 @@ def export(run: Path, attestation: bool, prov: bool, key: Path | None, out: Path
 
     Read from the ledger alone, which must be intact and finished (exit 4 if not).
     """
-    from lotproof.runner.record.export import dsse_envelope, in_toto_statement, prov_document
-    from lotproof.runner.record.ledger import _inside_run_folder
+    from lotproof.runner.record.export import (
+        dsse_envelope,
+        in_toto_statement,
+        prov_document,
+    )
 
     if attestation == prov:
         raise click.UsageError("give exactly one of --attestation and --prov")
@@ -127,14 +131,15 @@ def export(run: Path, attestation: bool, prov: bool, key: Path | None, out: Path
     if out is None:
         click.echo(text, nl=False)
         return
-    if _inside_run_folder(out) is not None:
+    if inside_run_folder(out) is not None:
         raise click.UsageError(f"{out}: inside a run folder; run folders are never changed")
     try:
-        with open(out, "x", encoding="utf-8") as handle:
-            handle.write(text)
+        write_file(out, text.encode("utf-8"), replace=False)
     except FileExistsError:
         raise click.UsageError(f"{out}: exists already; never overwritten") from None
-    _err().print(f"wrote {out}")
+    except OSError as error:
+        raise click.UsageError(f"{out}: cannot write ({error.strerror})") from None
+    stderr().print(f"wrote {out}")
 
 
 # ---------------------------------------------------------------- diff
@@ -153,7 +158,7 @@ def _text(value: Any) -> str:
     return str(value)
 
 
-@cli.command()
+@click.command()
 @click.argument("a")
 @click.argument("b")
 @click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
@@ -168,12 +173,12 @@ def diff(a: str, b: str, as_json: bool) -> None:
     try:
         result = diff_recipes(a, b)
     except RecipeError as err:
-        _fail_recipe(err, as_json)
+        fail_recipe(err, as_json)
         return
     if as_json:
-        _emit_json(result.as_dict())
+        emit_json(result.as_dict())
         return
-    console = _out()
+    console = stdout()
     console.print(Text(f"{result.a} ({result.a_label}) -> {result.b} ({result.b_label})", style="bold"))
     for warning in result.warnings:
         console.print(Text(f"warning: {warning}", style="yellow"))
@@ -196,7 +201,7 @@ def diff(a: str, b: str, as_json: bool) -> None:
 # ---------------------------------------------------------------- compare
 
 
-@cli.command()
+@click.command()
 @click.argument("run_a", type=click.Path(file_okay=False, exists=True, path_type=Path))
 @click.argument("run_b", type=click.Path(file_okay=False, exists=True, path_type=Path))
 @click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
@@ -209,17 +214,17 @@ def compare(run_a: Path, run_b: Path, as_json: bool) -> None:
 
     result = compare_runs(run_a, run_b)
     if as_json:
-        _emit_json(result.as_dict())
+        emit_json(result.as_dict())
         return
-    console = _out()
+    console = stdout()
 
     def method(m: dict[str, Any]) -> str:
         return f"{m.get('name', '?')} r{m.get('revision', '?')}"
 
     same = "same recipe" if result.same_recipe else "different recipes"
     console.print(Text(f"{method(result.method_a)} -> {method(result.method_b)} ({same})", style="bold"))
-    console.print(Text("lot verdict: ") + _mark(result.lot_verdict_a) + Text(" -> ")
-                  + _mark(result.lot_verdict_b))
+    console.print(Text("lot verdict: ") + mark(result.lot_verdict_a) + Text(" -> ")
+                  + mark(result.lot_verdict_b))
     for label, names in (("images only in A", result.images_only_a),
                          ("images only in B", result.images_only_b),
                          ("values only in A", result.columns_only_a),
@@ -234,12 +239,12 @@ def compare(run_a: Path, run_b: Path, as_json: bool) -> None:
             unit = "" if lim.unit in ("-", "") else f" {lim.unit}"
             table.add_row(lim.name, lim.over_b, _number(lim.value_a) + unit,
                           _number(lim.value_b) + unit, _number(lim.delta),
-                          _mark(lim.verdict_a), _mark(lim.verdict_b))
+                          mark(lim.verdict_a), mark(lim.verdict_b))
         console.print(table)
     if result.verdict_changes:
         table = _table("verdict changes", ("image", "what", "A", "B"))
         for c in result.verdict_changes:
-            table.add_row(c.image, c.what, _mark(c.a), _mark(c.b))
+            table.add_row(c.image, c.what, mark(c.a), mark(c.b))
         console.print(table)
     changed = result.changed_values
     if changed:

@@ -24,16 +24,20 @@ from __future__ import annotations
 
 import json
 import os
-import tempfile
 import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Protocol
+from typing import Any, BinaryIO, Protocol
 
 import numpy as np
 
-from lotproof.runner.evaluate.hashing import canonical_json, content_checksum, float_text
+from lotproof.runner.evaluate.hashing import (
+    canonical_json,
+    content_checksum,
+    float_text,
+)
+from lotproof.runner.files import TEMP_PREFIX, write_file
 from lotproof.steps import Output, Table
 
 __all__ = [
@@ -199,7 +203,7 @@ class DiskStore:
         self.objects.mkdir(parents=True, exist_ok=True)
         marker = self.root / _MARKER
         if not marker.exists():
-            _atomic_write(marker, canonical_json({"format": CACHE_FORMAT, "hash": "sha256"}) + b"\n")
+            write_file(marker, canonical_json({"format": CACHE_FORMAT, "hash": "sha256"}) + b"\n", replace=True)
         else:
             try:
                 info = json.loads(marker.read_text())
@@ -319,24 +323,16 @@ class DiskStore:
         return checksum
 
     def _write(self, path: Path, header: bytes, arrays: list[np.ndarray]) -> None:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=path.parent)
-        try:
-            with os.fdopen(fd, "wb") as handle:
-                handle.write(header + b"\n")
-                for array in arrays:
-                    if array.size:
-                        handle.write(memoryview(array).cast("B"))
-            # No fsync: the rename makes the entry appear whole to other processes, and an
-            # entry that a power cut left with lost bytes fails its checksum on read and is
-            # recomputed. (The ledger, which is evidence, is fsync'ed line by line.)
-            os.replace(tmp, path)
-        except BaseException:
-            try:
-                os.unlink(tmp)
-            except OSError:
-                pass
-            raise
+        def fill(handle: BinaryIO) -> None:
+            handle.write(header + b"\n")
+            for array in arrays:
+                if array.size:
+                    handle.write(memoryview(array).cast("B"))
+
+        # Not durable: the rename makes the entry appear whole to other processes, and an
+        # entry that a power cut left with lost bytes fails its checksum on read and is
+        # recomputed. (The run folder, which is evidence, is written durably.)
+        write_file(path, fill, replace=True, durable=False)
 
     # ------------------------------------------------------------ maintenance
 
@@ -347,7 +343,7 @@ class DiskStore:
             if not folder.is_dir():
                 continue
             for path in sorted(folder.iterdir()):
-                if path.name.startswith(".tmp-"):
+                if path.name.startswith(TEMP_PREFIX):
                     continue
                 try:
                     yield path, path.stat()
@@ -389,7 +385,7 @@ class DiskStore:
                     freed += size
                     total -= size
         if self.objects.is_dir():
-            for tmp in self.objects.glob("*/.tmp-*"):
+            for tmp in self.objects.glob(f"*/{TEMP_PREFIX}*"):
                 try:
                     if now - tmp.stat().st_mtime > 3600:
                         tmp.unlink()
@@ -404,20 +400,3 @@ def _unlink(path: Path) -> bool:
         return True
     except OSError:
         return False
-
-
-def _atomic_write(path: Path, data: bytes) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(data)
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise

@@ -18,13 +18,26 @@ from typing import Any
 
 import numpy as np
 
-from lotproof.runner.evaluate.cache import NullStore, Store
 from lotproof.runner.errors import InputError
-from lotproof.runner.evaluate.hashing import content_checksum, input_key, library_versions, step_key
+from lotproof.runner.evaluate.cache import NullStore, Store
+from lotproof.runner.evaluate.hashing import (
+    content_checksum,
+    input_key,
+    library_versions,
+    step_key,
+)
 from lotproof.runner.evaluate.inputs import LoadedImage, Sample, read_image
 from lotproof.runner.recipe.model import Recipe
-from lotproof.steps import REGISTRY, Area, Length, Output, StepParams, Table, resolve_to_px
-from lotproof.steps._units import Volume, resolve_for_spacing
+from lotproof.steps import (
+    REGISTRY,
+    Area,
+    Length,
+    Output,
+    StepParams,
+    Table,
+    resolve_to_px,
+)
+from lotproof.steps.units import Volume, resolve_for_spacing
 
 __all__ = ["StepRecord", "ImageResult", "resolve_params", "analyse_sample"]
 
@@ -83,7 +96,7 @@ def resolve_params(params: StepParams, spacing: tuple[float, ...]) -> StepParams
     ``spacing`` is the pixel size per array axis in um, ``(dy, dx)`` or
     ``(dz, dy, dx)``. With square pixels (cubic voxels) a length becomes plain
     pixels. Otherwise a physical length becomes a length in px that carries
-    its size along every axis (``Length.axes``, see :mod:`lotproof.steps._units`):
+    its size along every axis (``Length.axes``, see :mod:`lotproof.steps.units`):
     footprints turn it into an ellipse or ellipsoid, and a step that applies
     one size along every axis refuses it. Areas use ``dy * dx``, volumes
     ``dz * dy * dx``. The cache key holds both the resolved parameters (whose

@@ -2,9 +2,10 @@
 
 Volumes: a multi-page TIFF (one slice a page) or a TIFF holding a 3-D array is
 read as a volume ``(z, y, x)``. Its voxel size comes, most trusted first, from
-OME-XML ``PhysicalSizeX/Y/Z`` (with units, default um), from the ImageJ
-description (``spacing`` along z, ``unit``) with the resolution tags for x and
-y, or not at all (a volume without a z spacing is uncalibrated); the recipe's
+OME-XML ``PhysicalSizeX/Y/Z`` (with units, default um), from the ``unit`` and
+``spacing`` (along z) keys of the key=value text that much microscopy software
+writes into the TIFF ImageDescription, with the resolution tags for x and y, or
+not at all (a volume without a z spacing is uncalibrated); the recipe's
 ``pixel_size`` / ``voxel_size`` and its ``calibration`` rule decide what is
 used (see ``lotproof.runner.evaluate.image``).
 
@@ -43,12 +44,14 @@ import stat
 import warnings
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass, field
-from pathlib import Path, PurePosixPath
+from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from lotproof.runner.errors import InputError
+from lotproof.runner.recipe.patterns import check_pattern, glob_to_regex
+from lotproof.steps.units import FILE_LENGTH_UNITS, LENGTH_UNITS
 
 __all__ = [
     "MAX_FILE_BYTES",
@@ -75,7 +78,6 @@ PNG_SUFFIXES = (".png",)
 JPEG_SUFFIXES = (".jpg", ".jpeg")
 #: resolutions that mean "not calibrated": screen and print defaults, in dots per inch
 _DEFAULT_DPI = (1.0, 72.0, 96.0, 150.0, 300.0, 600.0)
-_UM_PER = {"inch": 25400.0, "cm": 1e4, "mm": 1e3, "um": 1.0, "nm": 1e-3, "m": 1e6}
 
 
 @dataclass(frozen=True)
@@ -123,45 +125,6 @@ class Sample:
 # ---------------------------------------------------------------- finding files
 
 
-def _glob_to_regex(pattern: str) -> re.Pattern[str]:
-    out = []
-    i = 0
-    while i < len(pattern):
-        c = pattern[i]
-        if pattern.startswith("**/", i):
-            out.append("((?:[^/]*/)*)")
-            i += 3
-            continue
-        if c == "*":
-            out.append("([^/]*)")
-        elif c == "?":
-            out.append("([^/])")
-        elif c == "[":
-            end = pattern.find("]", i + 1)
-            if end == -1:
-                out.append(re.escape(c))
-            else:
-                body = pattern[i + 1 : end].replace("\\", "\\\\")
-                if body.startswith("!"):
-                    body = "^" + body[1:]
-                out.append(f"([{body}])")
-                i = end
-        else:
-            out.append(re.escape(c))
-        i += 1
-    return re.compile("^" + "".join(out) + "$")
-
-
-def check_pattern(pattern: str) -> str | None:
-    """Why ``pattern`` may not be used as an input glob, or ``None`` when it may."""
-    posix = PurePosixPath(pattern.replace("\\", "/"))
-    if posix.is_absolute() or re.match(r"^[A-Za-z]:", pattern):
-        return "an input glob is relative to the lot folder; absolute paths are refused"
-    if ".." in posix.parts:
-        return "an input glob may not leave the lot folder ('..' is refused)"
-    return None
-
-
 def find_samples(lot: Path, inputs: dict[str, str]) -> list[Sample]:
     """The images of ``lot`` for the recipe's ``inputs``, sorted by id.
 
@@ -180,7 +143,7 @@ def find_samples(lot: Path, inputs: dict[str, str]) -> list[Sample]:
         refused = check_pattern(pattern)
         if refused:
             raise InputError(f"input {name!r} ({pattern!r}): {refused}")
-        regex = _glob_to_regex(pattern.replace("\\", "/"))
+        regex = glob_to_regex(pattern.replace("\\", "/"))
         found: dict[tuple[str, ...], Path] = {}
         for path in sorted(lot.glob(pattern)):
             try:
@@ -275,7 +238,7 @@ def _ome_calibration(xml: str) -> Calibration | None:
                         continue
                     return None
                 unit = element.get(f"PhysicalSize{axis}Unit", "µm")
-                factor = {"µm": 1.0, "um": 1.0, "nm": 1e-3, "mm": 1e3, "cm": 1e4, "m": 1e6}.get(unit)
+                factor = FILE_LENGTH_UNITS.get(unit)
                 if factor is None:
                     return None
                 sizes.append(float(value) * factor)
@@ -307,12 +270,11 @@ def _tiff_calibration(tif: Any, ndim_spatial: int) -> Calibration:
         return Calibration(None, "resolution tags are zero or invalid")
     unit_tag = tags.get("ResolutionUnit")
     unit_code = int(unit_tag.value) if unit_tag is not None else 2
-    imagej = tif.imagej_metadata or {}
-    ij_unit = str(imagej.get("unit", "")).replace("\\u00B5", "µ").strip()
-    if ij_unit in ("µm", "um", "micron", "microns"):
-        unit, source = "um", "ImageJ description unit and resolution tags"
-    elif ij_unit in ("nm", "mm", "cm"):
-        unit, source = ij_unit, "ImageJ description unit and resolution tags"
+    # the key=value text in the ImageDescription tag, as tifffile parses it
+    described = tif.imagej_metadata or {}
+    described_unit = str(described.get("unit", "")).replace("\\u00B5", "µ").strip()
+    if LENGTH_UNITS.get(described_unit, ("px", None))[1] is not None:
+        unit, source = described_unit, "ImageDescription unit and resolution tags"
     elif unit_code == 3:
         unit, source = "cm", "resolution tags (per centimetre)"
     elif unit_code == 2:
@@ -321,14 +283,14 @@ def _tiff_calibration(tif: Any, ndim_spatial: int) -> Calibration:
         unit, source = "inch", "resolution tags (per inch)"
     else:
         return Calibration(None, "resolution tags without a unit")
-    size_x = _UM_PER[unit] / rx
-    size_y = _UM_PER[unit] / ry
+    size_x = FILE_LENGTH_UNITS[unit] / rx
+    size_y = FILE_LENGTH_UNITS[unit] / ry
     sizes: tuple[float, ...] = (size_y, size_x)
     if ndim_spatial == 3:
-        spacing = imagej.get("spacing")
+        spacing = described.get("spacing")
         if spacing is None:
             return Calibration(None, "volume without a z spacing")
-        sizes = (float(spacing) * _UM_PER[unit],) + sizes
+        sizes = (float(spacing) * FILE_LENGTH_UNITS[unit],) + sizes
     return Calibration(sizes, source)
 
 

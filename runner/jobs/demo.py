@@ -9,9 +9,9 @@ installed from.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
-from collections.abc import Mapping
 from types import MappingProxyType
 
 from lotproof.runner.errors import InputError, LotproofError

@@ -17,14 +17,15 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from lotproof.runner.evaluate.cache import NullStore
 from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INTEGRITY, LotproofError
+from lotproof.runner.evaluate.cache import NullStore
+from lotproof.runner.evaluate.environment import environment, environment_differences
 from lotproof.runner.evaluate.hashing import file_sha256
 from lotproof.runner.evaluate.inputs import Sample
-from lotproof.runner.record.ledger import read_ledger, verify_run
-from lotproof.runner.evaluate.environment import environment, environment_differences
-from lotproof.runner.recipe.model import parse_recipe
 from lotproof.runner.jobs.run import RunSummary, run_lot
+from lotproof.runner.recipe.load import parse_recipe
+from lotproof.runner.record.ledger import read_ledger
+from lotproof.runner.record.verify import verify_run
 
 __all__ = ["RerunRefused", "Difference", "RerunReport", "rerun"]
 

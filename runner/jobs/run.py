@@ -8,26 +8,29 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from lotproof.runner.evaluate.cache import DiskStore, NullStore, Store
-from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INVALID, EXIT_LIMIT_FAILED, EXIT_OK, LotproofError
-from lotproof.runner.evaluate.image import ImageResult
-from lotproof.runner.evaluate.hashing import file_sha256
-from lotproof.runner.evaluate.inputs import Sample, find_samples
-from lotproof.runner.record.ledger import (
-    LEDGER_FILE,
-    SUMS_FILE,
-    LedgerWriter,
-    _load_private_key,
-    git_info,
-    write_sha256sums,
-    write_signature,
+from lotproof.runner.errors import (
+    EXIT_BAD_INPUT,
+    EXIT_INVALID,
+    EXIT_LIMIT_FAILED,
+    EXIT_OK,
+    LotproofError,
 )
-from lotproof.runner.record.limits import FAIL, Verdicts, evaluate_limits
-from lotproof.runner.record.folder import create_run_folder, write_previews, write_run_files
+from lotproof.runner.evaluate.cache import DiskStore, NullStore, Store
 from lotproof.runner.evaluate.environment import environment, utc_now
+from lotproof.runner.evaluate.hashing import file_sha256
+from lotproof.runner.evaluate.image import ImageResult
+from lotproof.runner.evaluate.inputs import Sample, find_samples
+from lotproof.runner.lot.base import LotExecutor, usable_cores
+from lotproof.runner.lot.local import LocalExecutor
+from lotproof.runner.recipe.git import git_info
+from lotproof.runner.recipe.load import load_recipe
+from lotproof.runner.recipe.model import Recipe
+from lotproof.runner.record.folder import create_run_folder, write_previews, write_run_files
+from lotproof.runner.record.layout import LEDGER_FILE, SUMS_FILE
+from lotproof.runner.record.ledger import LedgerWriter, write_sha256sums
+from lotproof.runner.record.limits import FAIL, Verdicts, evaluate_limits
+from lotproof.runner.record.signing import load_private_key, write_signature
 from lotproof.runner.show.report import write_report
-from lotproof.runner.lot.local import LocalExecutor, LotExecutor, usable_cores
-from lotproof.runner.recipe.model import Recipe, load_recipe
 
 __all__ = ["RunSummary", "WritesIntoLotError", "exit_code_for", "run_lot", "usable_cores"]
 
@@ -181,7 +184,7 @@ def run_lot(
     if samples is None:
         samples = find_samples(lot, recipe.inputs)
     if sign is not None:
-        _load_private_key(sign)  # a bad key fails before anything runs
+        load_private_key(sign)  # a bad key fails before anything runs
     run_dir = create_run_folder(Path(out), recipe)
     with LedgerWriter(run_dir / LEDGER_FILE) as ledger:
         start = environment()

@@ -13,19 +13,13 @@ from __future__ import annotations
 from collections.abc import Iterator
 from contextlib import contextmanager
 
-from lotproof.runner.errors import EXIT_INVALID, LotproofError
-from lotproof.runner.lot.local import LocalExecutor, LotExecutor
+from lotproof.runner.lot.base import ExecutorError, LotExecutor
+from lotproof.runner.lot.local import LocalExecutor
 
 __all__ = ["EXECUTOR_KINDS", "ExecutorError", "make_executor", "open_executor", "close_executor"]
 
 #: the executors ``--executor`` chooses from
 EXECUTOR_KINDS: tuple[str, ...] = ("local", "dask", "dask-local")
-
-
-class ExecutorError(LotproofError, ValueError):
-    """An executor cannot be made: contradictory options, no scheduler, dask not installed."""
-
-    exit_code = EXIT_INVALID
 
 
 def make_executor(

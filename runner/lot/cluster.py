@@ -1,6 +1,6 @@
 """Running a lot on a dask.distributed cluster, with the same results as on this machine.
 
-One dask task per image runs :func:`lotproof.runner.lot.local.analyse_task`, the very task the
+One dask task per image runs :func:`lotproof.runner.lot.base.analyse_task`, the very task the
 local executor runs. A task carries the recipe's exact bytes and path, the lot
 folder and the cache folder as absolute paths; each worker process parses the
 recipe once and opens the cache folder once (as :mod:`lotproof.runner.lot.local` does per pool
@@ -36,8 +36,16 @@ from typing import Any
 from lotproof.runner.evaluate.cache import DiskStore, NullStore, Store
 from lotproof.runner.evaluate.image import ImageResult
 from lotproof.runner.evaluate.inputs import Sample
-from lotproof.runner.lot.local import SINGLE_THREAD_ENV, OnImage, analyse_task, single_thread_environment, worker_name
-from lotproof.runner.recipe.model import Recipe, parse_recipe
+from lotproof.runner.lot.base import (
+    SINGLE_THREAD_ENV,
+    ExecutorError,
+    OnImage,
+    analyse_task,
+    single_thread_environment,
+    worker_name,
+)
+from lotproof.runner.recipe.load import parse_recipe
+from lotproof.runner.recipe.model import Recipe
 
 __all__ = ["DaskExecutor", "ALLOWED_FAILURES", "software_fingerprint"]
 
@@ -50,8 +58,8 @@ _INSTALL_HINT = "the dask executor needs dask.distributed: pip install 'lotproof
 def software_fingerprint() -> dict[str, Any]:
     """What must be the same on every worker for results to be bit-identical."""
     from lotproof.runner import __version__
-    from lotproof.runner.evaluate.hashing import library_versions
     from lotproof.runner.evaluate.environment import LIBRARIES, cpu_info
+    from lotproof.runner.evaluate.hashing import library_versions
 
     return {
         "lotproof": __version__,
@@ -162,7 +170,7 @@ class DaskExecutor:
 
     Raises
     ------
-    lotproof.runner.lot.choose.ExecutorError
+    lotproof.runner.lot.base.ExecutorError
         When dask.distributed is not installed, or the scheduler cannot be reached.
     """
 
@@ -174,7 +182,6 @@ class DaskExecutor:
         client: Any = None,
         connect_timeout: float = 10.0,
     ):
-        from lotproof.runner.lot.choose import ExecutorError
 
         if sum(x is not None for x in (scheduler, workers, client)) != 1:
             raise ExecutorError("give one of: a scheduler address, a number of workers, a client")

@@ -15,15 +15,16 @@ repository that holds the file's folder).
 from __future__ import annotations
 
 import os
-import subprocess
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from lotproof.runner.errors import Problem, RecipeError
-from lotproof.runner.recipe.model import Recipe, StepDef, parse_recipe
+from lotproof.runner.recipe.git import GitError, git_show
+from lotproof.runner.recipe.load import parse_recipe
+from lotproof.runner.recipe.model import Recipe, StepDef
 from lotproof.steps import Area, Length, resolve_to_px
-from lotproof.steps._units import AREA_UNITS, LENGTH_UNITS
+from lotproof.steps.units import AREA_UNITS, LENGTH_UNITS
 
 __all__ = ["Change", "RecipeDiff", "read_recipe_source", "diff_recipes"]
 
@@ -102,38 +103,6 @@ def _problem(shown: str, what: str) -> RecipeError:
     return RecipeError([Problem(shown, 1, 1, "", what)])
 
 
-def _git_show(path: str, rev: str, shown: str) -> bytes:
-    folder = Path(os.path.abspath(path)).parent
-    if not folder.is_dir():
-        raise _problem(shown, f"no folder {folder} to find the git repository in")
-
-    def git(*args: str) -> subprocess.CompletedProcess[bytes]:
-        try:
-            return subprocess.run(
-                ["git", "--no-optional-locks", "-C", str(folder), *args],
-                capture_output=True, timeout=30, check=False,
-                env={**os.environ, "LC_ALL": "C", "GIT_TERMINAL_PROMPT": "0"},
-            )
-        except (OSError, subprocess.SubprocessError) as err:
-            raise _problem(shown, f"cannot run git ({err})") from None
-
-    top = git("rev-parse", "--show-toplevel")
-    if top.returncode != 0:
-        raise _problem(shown, f"{folder} is not inside a git work tree")
-    root = Path(top.stdout.decode().strip()).resolve()
-    try:
-        relative = (folder.resolve() / Path(path).name).relative_to(root).as_posix()
-    except ValueError:
-        raise _problem(shown, f"{path} is not inside the repository {root}") from None
-    if rev.startswith("-"):
-        raise _problem(shown, f"{rev!r} is not a git revision")
-    done = git("show", f"{rev}:{relative}")
-    if done.returncode != 0:
-        message = done.stderr.decode("utf-8", errors="replace").strip().splitlines()
-        raise _problem(shown, f"git show {rev}:{relative} failed: {message[-1] if message else '?'}")
-    return done.stdout
-
-
 def read_recipe_source(source: str) -> tuple[bytes, str]:
     """The bytes of a recipe given as ``PATH`` or ``PATH@REV``, and the name to show.
 
@@ -152,7 +121,10 @@ def read_recipe_source(source: str) -> tuple[bytes, str]:
     path, _, rev = source.rpartition("@")
     if not path or not rev:
         raise _problem(source, "write PATH@REV, e.g. recipes/a.yaml@HEAD~1")
-    return _git_show(path, rev, source), source
+    try:
+        return git_show(path, rev), source
+    except GitError as err:
+        raise _problem(source, str(err)) from None
 
 
 # ---------------------------------------------------------------- comparing

@@ -11,15 +11,13 @@ from __future__ import annotations
 
 import dataclasses
 import difflib
-from typing import TYPE_CHECKING
 
 import networkx as nx
 
-from lotproof.runner.evaluate.inputs import check_pattern
+from lotproof.runner.recipe.model import Recipe
+from lotproof.runner.recipe.patterns import check_pattern
+from lotproof.runner.recipe.problems import ProblemCollector
 from lotproof.steps import REGISTRY
-
-if TYPE_CHECKING:
-    from lotproof.runner.recipe.model import Recipe, _Collector
 
 __all__ = ["INPUT_KIND", "RESULT_KINDS", "build_graph", "resolve_graph", "run_order"]
 
@@ -50,7 +48,7 @@ def run_order(graph: nx.DiGraph, names: set[str]) -> tuple[str, ...]:
 
 
 def resolve_graph(
-    recipe: Recipe, collector: _Collector, *, strict: bool, declared: frozenset[str] = frozenset()
+    recipe: Recipe, collector: ProblemCollector, *, strict: bool, declared: frozenset[str] = frozenset()
 ) -> Recipe:
     """Check the graph of ``recipe``, adding problems to ``collector``.
 
@@ -130,7 +128,7 @@ def resolve_graph(
     )
 
 
-def _report_cycles(graph: nx.DiGraph, collector: _Collector) -> bool:
+def _report_cycles(graph: nx.DiGraph, collector: ProblemCollector) -> bool:
     work = graph.copy()
     found = False
     for _ in range(len(work.edges) + 1):

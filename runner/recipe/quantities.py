@@ -4,7 +4,9 @@ A limit's bound is written with its unit (``max: 60 um``, ``min: 0.05 mm``,
 ``max: 150 1/mm2``) unless the value is dimensionless (``max: 0.18``). The bound
 is converted to the value's own unit, so ``max: 0.06 mm`` on a value in ``um``
 becomes 60. A bare number on a value that has a unit is refused, for the same
-reason a bare number is refused where a length belongs.
+reason a bare number is refused where a length belongs. A bound takes the same
+unit spellings as a step parameter (:mod:`lotproof.steps.units`), and their
+reciprocals for densities (``1/mm2``, ``/um``).
 """
 
 from __future__ import annotations
@@ -12,22 +14,11 @@ from __future__ import annotations
 import math
 import re
 
-__all__ = ["DIMENSIONLESS", "UNIT_FAMILIES", "BoundError", "parse_bound"]
+from lotproof.steps.units import unit_factor, unit_spellings
+
+__all__ = ["DIMENSIONLESS", "BoundError", "parse_bound"]
 
 DIMENSIONLESS = "-"
-
-#: unit families: canonical unit -> {spelling: factor to the canonical unit}
-UNIT_FAMILIES: dict[str, dict[str, float]] = {
-    "um": {"nm": 1e-3, "um": 1.0, "µm": 1.0, "μm": 1.0, "micron": 1.0, "mm": 1e3},
-    "um2": {"nm2": 1e-6, "um2": 1.0, "µm2": 1.0, "µm²": 1.0, "um²": 1.0, "mm2": 1e6, "mm²": 1e6},
-    "um3": {"um3": 1.0, "µm3": 1.0, "µm³": 1.0, "mm3": 1e9, "mm³": 1e9},
-    "1/mm": {"1/mm": 1.0, "/mm": 1.0, "1/um": 1e3, "/um": 1e3},
-    "1/um": {"1/um": 1.0, "/um": 1.0, "1/mm": 1e-3, "/mm": 1e-3},
-    "1/mm2": {"1/mm2": 1.0, "/mm2": 1.0, "1/um2": 1e6, "/um2": 1e6, "1/cm2": 1e-2, "/cm2": 1e-2},
-    "1/mm3": {"1/mm3": 1.0, "/mm3": 1.0, "1/um3": 1e9, "/um3": 1e9, "1/cm3": 1e-3, "/cm3": 1e-3},
-    "px": {"px": 1.0},
-    "px2": {"px2": 1.0},
-}
 
 _BOUND = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*(\S.*?)?\s*$")
 
@@ -62,13 +53,13 @@ def parse_bound(raw: object, unit: str) -> float:
         elif unit == DIMENSIONLESS:
             raise BoundError(f"the value is dimensionless; write the bound without a unit (got {raw!r})")
         else:
-            family = UNIT_FAMILIES.get(unit, {unit: 1.0})
-            if given not in family:
+            factor = unit_factor(given, unit)
+            if factor is None:
                 raise BoundError(
                     f"unit {given!r} does not fit a value in {unit}; "
-                    f"use one of {', '.join(family)}"
+                    f"use one of {', '.join(unit_spellings(unit))}"
                 )
-            value *= family[given]
+            value *= factor
     else:
         raise BoundError(f"a number is needed (got {type(raw).__name__})")
     if not math.isfinite(value):

@@ -31,7 +31,9 @@ from pathlib import Path
 from typing import Any
 from urllib.parse import quote
 
-from lotproof.runner.record.ledger import LEDGER_FILE, LedgerError, _load_private_key, canonical, line_hash, read_ledger
+from lotproof.runner.record.layout import LEDGER_FILE
+from lotproof.runner.record.ledger import LedgerError, canonical, line_hash, read_ledger
+from lotproof.runner.record.signing import load_private_key
 
 __all__ = [
     "STATEMENT_TYPE",
@@ -147,7 +149,7 @@ def dsse_envelope(statement: dict[str, Any], private_key: Path) -> dict[str, Any
     """
     from cryptography.hazmat.primitives.serialization import Encoding, PublicFormat
 
-    key = _load_private_key(private_key)
+    key = load_private_key(private_key)
     body = canonical(statement)
     signature = key.sign(pae(PAYLOAD_TYPE, body))
     raw_public = key.public_key().public_bytes(Encoding.Raw, PublicFormat.Raw)
@@ -186,7 +188,7 @@ def _step_sources(run_dir: Path, events: list[dict[str, Any]]) -> dict[str, list
         return {}
     if hashlib.sha256(raw).hexdigest() != recipe_event.get("sha256"):
         raise LedgerError(f"{path}: its sha256 is not the one the ledger recorded; verify the run")
-    from lotproof.runner.recipe.model import parse_recipe
+    from lotproof.runner.recipe.load import parse_recipe
 
     recipe = parse_recipe(raw, str(path))
     return {name: list(step.to) for name, step in recipe.steps.items()}

@@ -1,18 +1,8 @@
-"""The run folder: a new folder per run, files written atomically, never overwritten.
+"""The run folder's files: created new, written atomically, never overwritten.
 
-Layout (see DESIGN.md, "Run record")::
-
-    RUN/recipe.yaml      exact bytes of the recipe as run
-    RUN/resolved.json    every parameter with defaults filled and lengths in pixels
-    RUN/images.csv       one row per image: status, reason, values, verdicts
-    RUN/objects.csv      one row per object of every per-object table
-    RUN/tables.csv       rows of other tables (e.g. size-spectrum classes), when there are any
-    RUN/inputs.json      every input file: path, size, sha256, shape, dtype, calibration
-    RUN/steps.csv        every (image, step): cache key, result checksum, computed or reused
-    RUN/verdicts.json    every limit and the lot verdict
-    RUN/kept/IMAGE/STEP.tif|.csv   results of steps marked keep: true
-    RUN/figures/IMAGE.thumbnail.png, IMAGE.overlay.png   for people to look at
-    RUN/report.html      the self-contained customer report (lotproof.runner.show.report)
+Which files there are and how they are named is :mod:`lotproof.runner.record.layout`;
+this module writes them: the CSV and JSON layouts of the tables, the resolved
+parameters, the verdicts document, kept results and the figures.
 """
 
 from __future__ import annotations
@@ -21,19 +11,30 @@ import csv
 import io
 import json
 import math
-import os
-import re
-import tempfile
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any
+from typing import Any, BinaryIO
 
 import numpy as np
 
 from lotproof.runner.errors import RunFolderError
 from lotproof.runner.evaluate.image import ImageResult, resolve_params
-from lotproof.runner.record.limits import Verdicts
+from lotproof.runner.files import write_file
 from lotproof.runner.recipe.model import Recipe
+from lotproof.runner.record.layout import (
+    IMAGES_FILE,
+    INPUTS_FILE,
+    OBJECTS_FILE,
+    RECIPE_FILE,
+    RESOLVED_FILE,
+    STEPS_FILE,
+    TABLES_FILE,
+    VERDICTS_FILE,
+    figure_path,
+    kept_path,
+    run_folder_name,
+)
+from lotproof.runner.record.limits import Verdicts
 from lotproof.steps import REGISTRY, Table
 
 __all__ = [
@@ -60,17 +61,10 @@ ROUNDING_RULE = (
     "length of a line become 2*floor(v/2) + 1 pixels (the nearest odd number, ties upward)."
 )
 
-_UNSAFE = re.compile(r"[^A-Za-z0-9._-]+")
-
-
-def _stamp(now: datetime) -> str:
-    return now.strftime("%Y%m%dT%H%M%SZ")
-
-
 def create_run_folder(out: Path, recipe: Recipe, now: datetime | None = None) -> Path:
     """Make a new, empty run folder under ``out``; never reuse an existing one."""
     now = now or datetime.now(timezone.utc)
-    base = f"{_stamp(now)}-{_UNSAFE.sub('-', recipe.name)}-r{int(recipe.revision)}"
+    base = run_folder_name(recipe.name, recipe.revision, now)
     try:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as err:
@@ -88,22 +82,12 @@ def create_run_folder(out: Path, recipe: Recipe, now: datetime | None = None) ->
 
 
 def write_bytes(path: Path, data: bytes) -> None:
-    """Write ``data`` to a new file at ``path`` via a temporary file and a rename."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    if path.exists():
-        raise RunFolderError(f"{path}: exists already; run files are never overwritten")
-    fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=path.parent)
+    """Write ``data`` to a new run file at ``path``, whole and durable; never overwrite one."""
     try:
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(data)
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.replace(tmp, path)
+        write_file(path, data, replace=False)
+    except FileExistsError:
+        raise RunFolderError(f"{path}: exists already; run files are never overwritten") from None
     except OSError as err:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
         raise RunFolderError(f"{path}: cannot write ({err.strerror})") from None
 
 
@@ -204,32 +188,30 @@ def _write_tables_csv(path: Path, recipe: Recipe, results: list[ImageResult], *,
     image's rows however many objects the lot has.
     """
     columns = _table_columns(results, per_object)
-    if path.exists():
-        raise RunFolderError(f"{path}: exists already; run files are never overwritten")
-    fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=path.parent)
+
+    def rows(raw: BinaryIO) -> None:
+        handle = io.TextIOWrapper(raw, encoding="utf-8", newline="")
+        writer = csv.writer(handle, lineterminator="\n")
+        writer.writerow(["image", "step"] + [_header(n, u) for n, u in columns])
+        for r in results:
+            for step_name in recipe.order:
+                table = r.tables.get(step_name)
+                if table is None or table.per_object != per_object:
+                    continue
+                cells = [
+                    _column_text(table.columns[n]) if n in table.columns else [""] * table.n_rows
+                    for n, _ in columns
+                ]
+                prefix = [r.id, step_name]
+                writer.writerows(prefix + list(row) for row in zip(*cells, strict=True))
+        handle.flush()
+        handle.detach()  # the raw file stays open: it is write_file's to close
+
     try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as handle:
-            writer = csv.writer(handle, lineterminator="\n")
-            writer.writerow(["image", "step"] + [_header(n, u) for n, u in columns])
-            for r in results:
-                for step_name in recipe.order:
-                    table = r.tables.get(step_name)
-                    if table is None or table.per_object != per_object:
-                        continue
-                    cells = [
-                        _column_text(table.columns[n]) if n in table.columns else [""] * table.n_rows
-                        for n, _ in columns
-                    ]
-                    prefix = [r.id, step_name]
-                    writer.writerows(prefix + list(row) for row in zip(*cells, strict=True))
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.replace(tmp, path)
+        write_file(path, rows, replace=False)
+    except FileExistsError:
+        raise RunFolderError(f"{path}: exists already; run files are never overwritten") from None
     except OSError as err:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
         raise RunFolderError(f"{path}: cannot write ({err.strerror})") from None
 
 
@@ -295,33 +277,26 @@ def _resolved(recipe: Recipe, results: list[ImageResult]) -> dict[str, Any]:
     }
 
 
-def _kept_name(image_id: str) -> str:
-    stem = image_id.rsplit(".", 1)[0] if "." in Path(image_id).name else image_id
-    parts = [(_UNSAFE.sub("_", p) or "_") for p in stem.split("/") if p not in ("", ".", "..")]
-    return "/".join(parts) or "_"
-
-
 def _write_kept(run: Path, results: list[ImageResult]) -> list[str]:
     import tifffile
 
     written = []
     for r in results:
         for step_name, data in r.kept.items():
-            folder = run / "kept" / _kept_name(r.id)
             if isinstance(data, np.ndarray):
                 buffer = io.BytesIO()
                 tifffile.imwrite(buffer, data, metadata=None, software=False, datetime=False)
-                path = folder / f"{_UNSAFE.sub('_', step_name)}.tif"
-                write_bytes(path, buffer.getvalue())
+                name = kept_path(r.id, step_name, "tif")
+                write_bytes(run / name, buffer.getvalue())
             elif isinstance(data, Table):
                 header = [_header(n, data.units[n]) for n in data.columns]
                 texts = [_column_text(c) for c in data.columns.values()]
                 rows = [header] + [list(row) for row in zip(*texts, strict=True)]
-                path = folder / f"{_UNSAFE.sub('_', step_name)}.csv"
-                write_bytes(path, _csv(rows))
+                name = kept_path(r.id, step_name, "csv")
+                write_bytes(run / name, _csv(rows))
             else:
                 continue
-            written.append(path.relative_to(run).as_posix())
+            written.append(name)
     return written
 
 
@@ -335,9 +310,9 @@ def write_previews(run: Path, result: ImageResult) -> list[str]:
     written = []
     for name, item in sorted(result.preview.items()):
         data = item if isinstance(item, bytes) else png_bytes(item)
-        path = run / "figures" / f"{_kept_name(result.id).replace('/', '__')}.{name}.png"
-        write_bytes(path, data)
-        written.append(path.relative_to(run).as_posix())
+        path = figure_path(result.id, name)
+        write_bytes(run / path, data)
+        written.append(path)
     return written
 
 
@@ -360,20 +335,20 @@ def write_run_files(
     run: Path, recipe: Recipe, results: list[ImageResult], verdicts: Verdicts, lot: Path
 ) -> list[str]:
     """Write every file of the run folder; returns their paths relative to ``run``."""
-    write_bytes(run / "recipe.yaml", recipe.raw)
+    write_bytes(run / RECIPE_FILE, recipe.raw)
     resolved = _resolved(recipe, results)
     resolved["lot"] = str(lot)
-    write_bytes(run / "resolved.json", _json(resolved))
-    write_bytes(run / "images.csv", _images_csv(recipe, results, verdicts))
-    _write_tables_csv(run / "objects.csv", recipe, results, per_object=True)
+    write_bytes(run / RESOLVED_FILE, _json(resolved))
+    write_bytes(run / IMAGES_FILE, _images_csv(recipe, results, verdicts))
+    _write_tables_csv(run / OBJECTS_FILE, recipe, results, per_object=True)
     extra = [r for r in results for t in r.tables.values() if not t.per_object]
     if extra:
-        _write_tables_csv(run / "tables.csv", recipe, results, per_object=False)
-    write_bytes(run / "steps.csv", _steps_csv(results))
+        _write_tables_csv(run / TABLES_FILE, recipe, results, per_object=False)
+    write_bytes(run / STEPS_FILE, _steps_csv(results))
     inputs = {r.id: r.inputs for r in results}
-    write_bytes(run / "inputs.json", _json(inputs))
+    write_bytes(run / INPUTS_FILE, _json(inputs))
     kept = _write_kept(run, results)
-    write_bytes(run / "verdicts.json", _json(verdicts_document(recipe, results, verdicts)))
-    tables = ["tables.csv"] if extra else []
-    return ["recipe.yaml", "resolved.json", "images.csv", "objects.csv", *tables, "steps.csv", "inputs.json", *kept,
-            "verdicts.json"]
+    write_bytes(run / VERDICTS_FILE, _json(verdicts_document(recipe, results, verdicts)))
+    tables = [TABLES_FILE] if extra else []
+    return [RECIPE_FILE, RESOLVED_FILE, IMAGES_FILE, OBJECTS_FILE, *tables, STEPS_FILE, INPUTS_FILE,
+            *kept, VERDICTS_FILE]

@@ -23,20 +23,25 @@ from __future__ import annotations
 import io
 import json
 import math
-import os
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from lotproof.runner.evaluate.cache import Store
 from lotproof.runner.errors import EXIT_INVALID, InputError, LotproofError
+from lotproof.runner.evaluate.cache import Store
 from lotproof.runner.evaluate.image import ImageResult, analyse_sample, resolve_params
-from lotproof.runner.evaluate.pictures import labels_display, mask_display, outline_overlay, to_display
 from lotproof.runner.evaluate.inputs import Sample, find_samples, read_image
-from lotproof.runner.recipe.model import Recipe, load_recipe
+from lotproof.runner.evaluate.pictures import (
+    labels_display,
+    mask_display,
+    outline_overlay,
+    to_display,
+)
+from lotproof.runner.files import write_file
+from lotproof.runner.recipe.load import load_recipe
+from lotproof.runner.recipe.model import Recipe
 from lotproof.steps import REGISTRY, Area, Length, Table
 
 __all__ = [
@@ -463,18 +468,6 @@ def write_preview(
 
 def _write_atomic(path: Path, data: bytes) -> None:
     try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=path.parent)
+        write_file(path, data, replace=True, durable=False)
     except OSError as err:
-        raise InputError(f"{path}: cannot write ({err.strerror})") from None
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(data)
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except OSError as err:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
         raise InputError(f"{path}: cannot write ({err.strerror})") from None

@@ -26,17 +26,17 @@ import html
 import io
 import json
 import math
-import os
 import re
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from lotproof.runner import __version__
 from lotproof.runner.errors import EXIT_INVALID, LotproofError
-from lotproof.runner.record.ledger import LEDGER_FILE, verify_run
-from lotproof.runner.record.folder import CAUTION, _kept_name, write_bytes
+from lotproof.runner.files import write_file
+from lotproof.runner.record.folder import CAUTION, write_bytes
+from lotproof.runner.record.layout import LEDGER_FILE, image_folder, is_within
+from lotproof.runner.record.verify import verify_run
 
 __all__ = [
     "REPORT_FILE",
@@ -44,6 +44,7 @@ __all__ = [
     "ReportError",
     "RunFiles",
     "build_report",
+    "check_outside",
     "default_report_path",
     "read_run_files",
     "rebuild_report",
@@ -198,7 +199,7 @@ def read_run_files(run_dir: Path, ledger_events: list[dict[str, Any]] | None = N
     files.events = list(ledger_events) if ledger_events is not None else _ledger_lines(run_dir / LEDGER_FILE)
     ids = list(files.verdicts.get("image_verdicts", {}))
     for image_id in ids:
-        stem = _kept_name(image_id).replace("/", "__")
+        stem = image_folder(image_id).replace("/", "__")
         found = {}
         for name in ("thumbnail", "overlay"):
             path = run_dir / "figures" / f"{stem}.{name}.png"
@@ -759,10 +760,9 @@ def default_report_path(run_dir: Path, pdf: bool = False) -> Path:
     return run_dir.parent / f"{run_dir.name}-report.{'pdf' if pdf else 'html'}"
 
 
-def _check_outside(run_dir: Path, out: Path) -> None:
-    run = Path(run_dir).resolve()
-    target = out.resolve()
-    if target == run or run in target.parents:
+def check_outside(run_dir: Path, out: Path) -> None:
+    """Refuse (:class:`ReportError`) a rebuilt report's path inside the run folder."""
+    if is_within(run_dir, out):
         raise ReportError(
             f"{out}: inside the run folder {run_dir}; nothing in a run folder is ever rewritten "
             "(write the rebuilt report beside it)"
@@ -785,7 +785,7 @@ def rebuild_report(run_dir: Path, out: Path | None = None) -> tuple[Path, str]:
     if not (run_dir / "verdicts.json").is_file():
         raise ReportError(f"{run_dir}: not a run folder (no verdicts.json)")
     out = Path(out) if out is not None else default_report_path(run_dir)
-    _check_outside(run_dir, out)
+    check_outside(run_dir, out)
     check = verify_run(run_dir)
     data = build_report(run_dir, None, seal=check.seal or "none (no ledger)",
                         record_status=check.status, problems=check.problems)
@@ -794,16 +794,7 @@ def rebuild_report(run_dir: Path, out: Path | None = None) -> tuple[Path, str]:
 
 
 def _replace(path: Path, data: bytes) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=path.parent)
     try:
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(data)
-        os.chmod(tmp, 0o644)  # a report is for reading: not the private mode of a temporary file
-        os.replace(tmp, path)
+        write_file(path, data, replace=True)
     except OSError as err:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
         raise ReportError(f"{path}: cannot write ({err.strerror})") from None

@@ -9,9 +9,9 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
-from lotproof.steps._units import Length
 from lotproof.steps.footprints import disk
 from lotproof.steps.granulometry import SizeSpectrumParams, size_spectrum
+from lotproof.steps.units import Length
 
 
 def spectrum(mask, max_radius, step=1.0, footprint="disk"):

@@ -12,7 +12,6 @@ import pytest
 import skimage.segmentation
 from scipy import ndimage
 
-from lotproof.steps._units import Area
 from lotproof.steps.filters import GrayParams, gray
 from lotproof.steps.masks import (
     ClearBorderParams,
@@ -22,6 +21,7 @@ from lotproof.steps.masks import (
     fill_holes,
     remove_small,
 )
+from lotproof.steps.units import Area
 
 # object connectivity -> (scipy structure rank for the objects, for the background)
 RANKS = {4: (1, 2), 8: (2, 1), 6: (1, 3), 18: (2, 1), 26: (3, 1)}

@@ -10,9 +10,9 @@ from scipy import ndimage
 from skimage.measure import euler_number as skimage_euler_number
 
 from lotproof.steps import _measure3d as m3
-from lotproof.steps._units import Length, resolve_for_spacing
 from lotproof.steps.footprints import MorphologyParams, build_footprint
 from lotproof.steps.measure import LabelParams, MeasureParams, label, measure
+from lotproof.steps.units import Length, resolve_for_spacing
 
 
 def _ball(radius_um: float, spacing: tuple[float, float, float], hollow_um: float = 0.0) -> np.ndarray:

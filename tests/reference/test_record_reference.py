@@ -28,16 +28,10 @@ from cryptography.hazmat.primitives.serialization import (
 )
 
 from lotproof.runner.record.export import pae, prov_document
-from lotproof.runner.record.ledger import (
-    LEDGER_FILE,
-    SIGNATURE_FILE,
-    SUMS_FILE,
-    LedgerWriter,
-    canonical,
-    sign_seal,
-    verify_run,
-    write_sha256sums,
-)
+from lotproof.runner.record.layout import LEDGER_FILE, SIGNATURE_FILE, SUMS_FILE
+from lotproof.runner.record.ledger import LedgerWriter, canonical, write_sha256sums
+from lotproof.runner.record.signing import sign_seal
+from lotproof.runner.record.verify import verify_run
 
 SHA256SUM = shutil.which("sha256sum")
 
@@ -179,14 +173,14 @@ def _rfc_keys(folder: Path) -> tuple[Path, Path]:
 
 
 def test_rfc8032_test_1_through_our_key_files(tmp_path: Path) -> None:
-    from lotproof.runner.record.ledger import _load_private_key, _load_public_key
+    from lotproof.runner.record.signing import load_private_key, load_public_key
 
     private, public = _rfc_keys(tmp_path)
-    key = _load_private_key(private)
+    key = load_private_key(private)
     raw_public = key.public_key().public_bytes(Encoding.Raw, PublicFormat.Raw)
     assert raw_public.hex() == RFC8032_PUBLIC
     assert key.sign(b"").hex() == RFC8032_SIGNATURE
-    _load_public_key(public).verify(bytes.fromhex(RFC8032_SIGNATURE), b"")
+    load_public_key(public).verify(bytes.fromhex(RFC8032_SIGNATURE), b"")
 
 
 def test_seal_signature_is_ed25519_over_the_hex_text(tmp_path: Path) -> None:

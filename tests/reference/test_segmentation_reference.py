@@ -10,8 +10,8 @@ from scipy import ndimage
 from skimage.feature import peak_local_max
 from skimage.segmentation import watershed
 
-from lotproof.steps._units import Length
 from lotproof.steps.segmentation import SplitParams, raster_relabel, split_touching
+from lotproof.steps.units import Length
 
 
 def split(mask, separation, depth=1.0, connectivity=None, spacing=(1.0, 1.0)):

@@ -48,6 +48,9 @@ __all__ = [
     "AREA_UNITS",
     "Length",
     "VOLUME_UNITS",
+    "FILE_LENGTH_UNITS",
+    "unit_factor",
+    "unit_spellings",
     "Area",
     "Volume",
     "parse_length",
@@ -67,6 +70,7 @@ LENGTH_UNITS: dict[str, tuple[str, float | None]] = {
     "micron": ("um", 1.0),
     "microns": ("um", 1.0),
     "mm": ("mm", 1e3),
+    "cm": ("cm", 1e4),
     "px": ("px", None),
 }
 
@@ -82,6 +86,8 @@ AREA_UNITS: dict[str, tuple[str, float | None]] = {
     "um²": ("um2", 1.0),
     "mm2": ("mm2", 1e6),
     "mm²": ("mm2", 1e6),
+    "cm2": ("cm2", 1e8),
+    "cm²": ("cm2", 1e8),
     "px2": ("px2", None),
     "px²": ("px2", None),
 }
@@ -98,9 +104,66 @@ VOLUME_UNITS: dict[str, tuple[str, float | None]] = {
     "um³": ("um3", 1.0),
     "mm3": ("mm3", 1e9),
     "mm³": ("mm3", 1e9),
+    "cm3": ("cm3", 1e12),
+    "cm³": ("cm3", 1e12),
     "px3": ("px3", None),
     "px³": ("px3", None),
 }
+
+#: Length units that image files' own metadata uses beyond the recipe's (TIFF
+#: resolution units, OME-XML ``PhysicalSizeXUnit``): name -> micrometres per unit.
+FILE_LENGTH_UNITS: dict[str, float] = {
+    **{name: um for name, (_, um) in LENGTH_UNITS.items() if um is not None},
+    "m": 1e6,
+    "inch": 25400.0,
+}
+
+_FAMILIES = (LENGTH_UNITS, AREA_UNITS, VOLUME_UNITS)
+
+
+def _family(unit: str) -> tuple[dict[str, tuple[str, float | None]], bool, str] | None:
+    """The table ``unit`` belongs to, whether it is a reciprocal (``1/mm``), and its spelling."""
+    reciprocal = unit.startswith(("1/", "/"))
+    base = unit.split("/", 1)[1] if reciprocal else unit
+    for table in _FAMILIES:
+        if base in table:
+            return table, reciprocal, base
+    return None
+
+
+def unit_spellings(unit: str) -> list[str]:
+    """Every spelling a number in ``unit`` may be written in (``um``: nm, um, µm, ..., mm).
+
+    ``unit`` is a length, area or volume unit or its reciprocal (``1/mm2``); pixel
+    units take only their own spellings (a pixel has no physical size). Any other
+    unit (``-``, ``1/s``) is only its own spelling.
+    """
+    found = _family(unit)
+    if found is None:
+        return [unit]
+    table, reciprocal, base = found
+    physical = table[base][1] is not None
+    names = [n for n, (canon, um) in table.items() if (um is not None) == physical
+             and (physical or canon == table[base][0])]
+    return [f"1/{n}" for n in names] + [f"/{n}" for n in names] if reciprocal else names
+
+
+def unit_factor(given: str, unit: str) -> float | None:
+    """What a number written in ``given`` is multiplied by to be in ``unit``; None if they do not fit.
+
+    ``unit_factor("mm", "um") == 1000``, ``unit_factor("1/cm2", "1/mm2") == 0.01``.
+    """
+    if given not in unit_spellings(unit):
+        return None
+    found_given, found_unit = _family(given), _family(unit)
+    if found_given is None or found_unit is None:
+        return 1.0  # the unit's own, non-physical spelling
+    table, reciprocal, base = found_unit
+    um_given, um_unit = table[found_given[2]][1], table[base][1]
+    if um_given is None or um_unit is None:
+        return 1.0  # px, px2, px3 in their own spellings
+    return um_unit / um_given if reciprocal else um_given / um_unit
+
 
 _QUANTITY = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*([^\s\d].*?)\s*$")
 

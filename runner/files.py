@@ -1,0 +1,128 @@
+"""Writing files whole or not at all: the one atomic-write helper every stage uses.
+
+A file is written to a temporary name (``.tmp-*``) in its destination folder and
+then given its name in one step, so a reader sees either no file or the whole
+file, never a part, whatever stops the writer (a kill, a full disk, a power cut
+before the name appeared). Readers never open ``.tmp-*`` files; ``lotproof cache
+prune`` removes stale ones.
+
+Two choices are the caller's, and each caller states them:
+
+``replace``
+    ``False`` (run files, keys, signatures, exports): an existing file is never
+    overwritten; the name is given with ``link()``, which fails on an existing
+    name where ``rename()`` would replace it, so two writers cannot both win.
+    ``True`` (cache entries, a rebuilt report, a preview sheet): ``rename()``.
+``durable``
+    ``True``: the data is fsync'ed before the name appears and the folder after,
+    so a file that has its name survives a power cut (everything in a run
+    folder: it is evidence). ``False`` (cache entries): no fsync; an entry a
+    power cut left short fails its checksum on read and is recomputed.
+
+Errors are plain :class:`OSError` (:class:`FileExistsError` when ``replace`` is
+``False`` and the name exists); each caller says what the file was for.
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from collections.abc import Callable
+from pathlib import Path
+from typing import BinaryIO
+
+__all__ = ["TEMP_PREFIX", "fsync_folder", "write_file"]
+
+#: prefix of the temporary files a write leaves only when it is killed
+TEMP_PREFIX = ".tmp-"
+
+
+def write_file(
+    path: Path,
+    data: bytes | Callable[[BinaryIO], None],
+    *,
+    replace: bool,
+    durable: bool = True,
+    mode: int | None = None,
+) -> None:
+    """Write ``data`` to ``path`` atomically.
+
+    Parameters
+    ----------
+    path
+        The file to write; its folder is created when missing.
+    data
+        The bytes, or a function that writes them to the open binary file (for
+        output streamed row by row, which is never held whole in memory).
+    replace
+        Replace an existing file (``True``) or refuse to (``False``).
+    durable
+        fsync the data before the file gets its name, and the folder after.
+    mode
+        Permission bits of the new file; ``None`` gives those of a file made by
+        ``open()`` (0o666 less the umask). Private keys pass 0o600.
+
+    Raises
+    ------
+    FileExistsError
+        ``replace`` is ``False`` and ``path`` exists.
+    OSError
+        Anything else that stopped the write; no partial file is left under ``path``.
+    """
+    path = Path(path)
+    if not replace and (path.exists() or path.is_symlink()):
+        raise FileExistsError(17, "exists already", str(path))
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=TEMP_PREFIX, dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            if callable(data):
+                data(handle)
+            else:
+                handle.write(data)
+            handle.flush()
+            os.chmod(tmp, _umasked() if mode is None else mode)
+            if durable:
+                os.fsync(handle.fileno())
+        if replace:
+            os.replace(tmp, path)
+        else:
+            os.link(tmp, path)  # fails on an existing name, where rename() would replace it
+            os.unlink(tmp)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+    if durable:
+        fsync_folder(path.parent)
+
+
+def fsync_folder(folder: Path) -> None:
+    """Make the names in ``folder`` durable (a new file's name is on disk once its folder is synced).
+
+    Best effort: file systems that cannot sync a folder are left as they are.
+    """
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+def _umasked() -> int:
+    # The umask can only be read by setting it; done once, it is put straight back.
+    global _UMASK
+    if _UMASK is None:
+        _UMASK = os.umask(0o022)
+        os.umask(_UMASK)
+    return 0o666 & ~_UMASK
+
+
+_UMASK: int | None = None

@@ -1,0 +1,253 @@
+"""Checking a run folder against its ledger: ``lotproof verify``.
+
+:func:`verify_run` re-hashes every file the ledger records, checks the chain,
+``SHA256SUMS``, the expected seal and the signature, and lists every file that
+the ledger does not record. It reports; it never changes the folder.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Literal
+
+from lotproof.runner.errors import EXIT_INTEGRITY
+from lotproof.runner.evaluate.hashing import file_sha256
+from lotproof.runner.record.layout import (
+    LEDGER_FILE,
+    RECIPE_FILE,
+    SIGNATURE_FILE,
+    SUMS_FILE,
+    safe_relative,
+)
+from lotproof.runner.record.ledger import parse_ledger
+from lotproof.runner.record.signing import load_public_key, read_signature
+
+__all__ = ["SignatureStatus", "VerifyReport", "VerifyStatus", "verify_run"]
+
+_HEX64 = re.compile(r"^[0-9a-f]{64}$")
+
+
+VerifyStatus = Literal["intact", "altered", "unfinished"]
+SignatureStatus = Literal["valid", "invalid", "absent", "not-checked"]
+
+
+@dataclass
+class VerifyReport:
+    """What :func:`verify_run` found.
+
+    ``status`` is ``intact`` (every check passed and the run ended), ``altered``
+    (something does not match; ``problems`` names the first failing line or file
+    first) or ``unfinished`` (the chain is sound but has no ``run-end``: a run that
+    never finished is never intact).
+    """
+
+    run_dir: Path
+    status: VerifyStatus
+    seal: str | None
+    problems: list[str] = field(default_factory=list)
+    checked_files: int = 0
+    signature: SignatureStatus = "absent"
+    events: int = 0
+
+    @property
+    def exit_code(self) -> int:
+        return 0 if self.status == "intact" else EXIT_INTEGRITY
+
+    def as_dict(self) -> dict[str, Any]:
+        return {
+            "run_dir": str(self.run_dir),
+            "status": self.status,
+            "seal": self.seal,
+            "signature": self.signature,
+            "events": self.events,
+            "checked_files": self.checked_files,
+            "problems": list(self.problems),
+        }
+
+
+def _check_file(run_dir: Path, name: str, sha256: Any, size: Any, where: str) -> str | None:
+    path = run_dir / name
+    if path.is_symlink():
+        return f"{name}: is a symbolic link, not the file recorded at {where}"
+    try:
+        actual_size = path.stat().st_size
+    except FileNotFoundError:
+        return f"{name}: missing (recorded at {where})"
+    except OSError as err:
+        return f"{name}: cannot read ({err.strerror})"
+    if not path.is_file():
+        return f"{name}: not a file (recorded at {where})"
+    if isinstance(size, int) and not isinstance(size, bool) and actual_size != size:
+        return f"{name}: {actual_size} bytes, {where} records {size}"
+    try:
+        actual = file_sha256(path)
+    except OSError as err:
+        return f"{name}: cannot read ({err.strerror})"
+    if actual != sha256:
+        return f"{name}: sha256 {actual} differs from {sha256} recorded at {where}"
+    return None
+
+
+def _check_sums(run_dir: Path, recorded: dict[str, str], problems: list[str]) -> set[str]:
+    """Check every line of SHA256SUMS; returns the names it lists."""
+    listed: set[str] = set()
+    try:
+        text = (run_dir / SUMS_FILE).read_bytes().decode("utf-8")
+    except (OSError, UnicodeDecodeError):
+        problems.append(f"{SUMS_FILE}: cannot be read as text")
+        return listed
+    for number, line in enumerate(text.splitlines(), 1):
+        match = re.fullmatch(r"([0-9a-f]{64})  (.+)", line)
+        if not match or safe_relative(match.group(2)) is None:
+            problems.append(f"{SUMS_FILE} line {number}: not a '<sha256>  <path>' line")
+            continue
+        digest, name = match.groups()
+        listed.add(name)
+        if name not in recorded:
+            problems.append(f"{SUMS_FILE} line {number}: {name} is in no output event of the ledger")
+        elif recorded[name] != digest:
+            problems.append(f"{SUMS_FILE} line {number}: {name} differs from the ledger's sha256")
+    return listed
+
+
+def verify_run(
+    run_dir: Path, public_key: Path | None = None, *, expected_seal: str | None = None
+) -> VerifyReport:
+    """Check a run folder against its ledger.
+
+    Checks, in this order (``problems`` lists what fails in the same order):
+
+    1. every ledger line parses, is canonical (re-serialising gives the same bytes),
+       has ``seq`` equal to its line number and ``prev`` equal to the hash of the
+       line before (:data:`GENESIS` for the first); ``run-end`` is the last event;
+    2. every ``output`` event's file exists with the recorded size and sha256, and
+       ``recipe.yaml`` has the sha256 of the ``recipe`` event;
+    3. ``SHA256SUMS``, when it is an output, agrees with the ledger line by line;
+    4. the seal equals ``expected_seal`` when one is given (the seal printed at the
+       end of the run); with ``public_key``, ``seal.sig`` verifies over the seal's
+       ASCII hex with Ed25519 (a missing signature is then a failure);
+    5. every file in the run folder is in an output event (except the ledger and
+       the signature): others are reported as "not recorded". After ``run-end``
+       such a file makes the run altered; in a run that never finished it is
+       expected (written after the last event) and the run is unfinished.
+
+    The last line of the ledger is covered only by the seal: without
+    ``expected_seal`` or a signature, an edit of the last line that keeps it
+    canonical JSON cannot be told from the original.
+    """
+    run_dir = Path(run_dir)
+    problems: list[str] = []
+    ledger = run_dir / LEDGER_FILE
+    try:
+        data = ledger.read_bytes()
+    except FileNotFoundError:
+        return VerifyReport(run_dir, "altered", None, [f"{LEDGER_FILE}: missing; no record to verify"])
+    except OSError as err:
+        return VerifyReport(run_dir, "altered", None, [f"{LEDGER_FILE}: cannot read ({err.strerror})"])
+    lines = parse_ledger(data, problems)
+    seal = lines[-1].hash if lines else None
+    events = [(line.number, line.event) for line in lines if line.event is not None]
+
+    finished = bool(events) and events[-1][1].get("type") == "run-end" and events[-1][0] == len(lines)
+    for number, event in events[:-1]:
+        if event.get("type") == "run-end":
+            problems.append(f"{LEDGER_FILE} line {number}: events follow the run-end event")
+            break
+
+    recorded: dict[str, str] = {}
+    checked: set[str] = set()
+    recipe_sha: str | None = None
+    for number, event in events:
+        where = f"{LEDGER_FILE} line {number}"
+        if event.get("type") == "recipe" and isinstance(event.get("sha256"), str):
+            recipe_sha = event["sha256"]
+        if event.get("type") != "output":
+            continue
+        name, digest = event.get("path"), event.get("sha256")
+        if not isinstance(name, str) or safe_relative(name) is None:
+            problems.append(f"{where}: output path {name!r} is not a plain path inside the run folder")
+            continue
+        if not isinstance(digest, str) or not _HEX64.match(digest):
+            problems.append(f"{where}: output {name} has no sha256")
+            continue
+        if name in (LEDGER_FILE, SIGNATURE_FILE):
+            problems.append(f"{where}: {name} cannot be an output of its own record")
+            continue
+        recorded[name] = digest
+        checked.add(name)
+        problem = _check_file(run_dir, name, digest, event.get("size"), where)
+        if problem:
+            problems.append(problem)
+    if recipe_sha is not None and RECIPE_FILE in recorded and recorded[RECIPE_FILE] != recipe_sha:
+        problems.append("recipe.yaml: its output sha256 differs from the recipe event's sha256")
+
+    if SUMS_FILE in recorded:
+        _check_sums(run_dir, recorded, problems)
+
+    unrecorded = [
+        f"{path}: not recorded in the ledger"
+        + (" (written after its last event)" if not finished else " (added after the run)")
+        for path in sorted(_files_under(run_dir))
+        if path not in recorded and path not in (LEDGER_FILE, SIGNATURE_FILE)
+    ]
+
+    if expected_seal is not None and seal != expected_seal.strip().lower():
+        problems.append(f"seal: {seal} is not the expected seal {expected_seal}")
+
+    signature: SignatureStatus
+    sig_path = run_dir / SIGNATURE_FILE
+    if public_key is None:
+        signature = "not-checked" if sig_path.exists() else "absent"
+    elif not sig_path.exists():
+        signature = "absent"
+        problems.append(f"{SIGNATURE_FILE}: missing, but a key was given to check it")
+    else:
+        key = load_public_key(public_key)
+        raw = read_signature(sig_path)
+        signature = "invalid"
+        if raw is None:
+            problems.append(f"{SIGNATURE_FILE}: not one line of base64 of a 64-byte signature")
+        elif seal is None:
+            problems.append(f"{SIGNATURE_FILE}: the ledger is empty; there is no seal to check")
+        else:
+            from cryptography.exceptions import InvalidSignature
+
+            try:
+                key.verify(raw, seal.encode("ascii"))
+                signature = "valid"
+            except InvalidSignature:
+                problems.append(f"{SIGNATURE_FILE}: the signature does not match the seal and key")
+
+    # A run that stopped early leaves files its ledger never reached: expected, so they
+    # make it unfinished, not altered. After run-end, any such file was added later.
+    status: VerifyStatus
+    if problems:
+        status = "altered"
+        problems.extend(unrecorded)
+    elif not finished:
+        status = "unfinished"
+        problems.append(
+            f"{LEDGER_FILE}: "
+            + ("empty" if not lines else f"the last event (line {len(lines)}) is not run-end")
+            + "; the run never finished"
+        )
+        problems.extend(unrecorded)
+    elif unrecorded:
+        status = "altered"
+        problems.extend(unrecorded)
+    else:
+        status = "intact"
+    return VerifyReport(run_dir, status, seal, problems, len(checked), signature, len(lines))
+
+
+def _files_under(run_dir: Path) -> list[str]:
+    names = []
+    for folder, dirs, files in os.walk(run_dir, followlinks=False):
+        base = Path(folder)
+        # symbolic links to folders are listed as files: they are never recorded
+        for name in files + [d for d in dirs if (base / d).is_symlink()]:
+            names.append((base / name).relative_to(run_dir).as_posix())
+    return names
