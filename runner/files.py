@@ -1,4 +1,4 @@
-"""Writing files whole or not at all: the one atomic-write helper every stage uses.
+"""Writing files whole or not at all, and reading only regular files: one helper each.
 
 A file is written to a temporary name (``.tmp-*``) in its destination folder and
 then given its name in one step, so a reader sees either no file or the whole
@@ -21,17 +21,22 @@ Two choices are the caller's, and each caller states them:
 
 Errors are plain :class:`OSError` (:class:`FileExistsError` when ``replace`` is
 ``False`` and the name exists); each caller says what the file was for.
+
+:func:`read_file` reads a file that must be a regular file: a pipe, a device or
+a socket under that name is refused before it is opened for reading, so nothing
+lotproof reads can make it wait forever.
 """
 
 from __future__ import annotations
 
 import os
+import stat
 import tempfile
 from collections.abc import Callable
 from pathlib import Path
 from typing import BinaryIO
 
-__all__ = ["TEMP_PREFIX", "fsync_folder", "write_file"]
+__all__ = ["TEMP_PREFIX", "NotARegularFile", "fsync_folder", "read_file", "write_file"]
 
 #: prefix of the temporary files a write leaves only when it is killed
 TEMP_PREFIX = ".tmp-"
@@ -97,6 +102,50 @@ def write_file(
         raise
     if durable:
         fsync_folder(path.parent)
+
+
+class NotARegularFile(OSError):
+    """A name that is a pipe, a device, a socket or a folder where a file belongs."""
+
+
+def read_file(path: Path, max_bytes: int | None = None) -> bytes:
+    """The bytes of the regular file ``path`` (symbolic links followed).
+
+    Parameters
+    ----------
+    path
+        The file.
+    max_bytes
+        Refuse a larger file (``OSError`` with ``EFBIG``) instead of reading it.
+
+    Raises
+    ------
+    NotARegularFile
+        ``path`` is not a regular file; it was not read.
+    FileNotFoundError, OSError
+        As ``open()`` raises them.
+    """
+    path = Path(path)
+    # O_NONBLOCK: opening a FIFO for reading would wait for a writer; fstat then refuses it
+    fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK | getattr(os, "O_CLOEXEC", 0))
+    try:
+        info = os.fstat(fd)
+        if not stat.S_ISREG(info.st_mode):
+            what = "a folder" if stat.S_ISDIR(info.st_mode) else "a pipe, device or socket"
+            raise NotARegularFile(21 if stat.S_ISDIR(info.st_mode) else 22,
+                                  f"not a regular file ({what})", str(path))
+        if max_bytes is not None and info.st_size > max_bytes:
+            raise OSError(27, f"{info.st_size} bytes, more than {max_bytes}", str(path))
+        os.set_blocking(fd, True)
+        with os.fdopen(fd, "rb", closefd=True) as handle:
+            fd = -1
+            data = handle.read() if max_bytes is None else handle.read(max_bytes + 1)
+    finally:
+        if fd >= 0:
+            os.close(fd)
+    if max_bytes is not None and len(data) > max_bytes:
+        raise OSError(27, f"more than {max_bytes} bytes", str(path))
+    return data
 
 
 def fsync_folder(folder: Path) -> None:

@@ -26,7 +26,8 @@ from lotproof.runner.record.export import (
     prov_document,
 )
 from lotproof.runner.record.layout import LEDGER_FILE
-from lotproof.runner.record.ledger import LedgerError, canonical, read_ledger
+from lotproof.runner.record.ledger import LedgerError, canonical
+from lotproof.runner.record.reading import RunFolder
 from lotproof.runner.record.signing import keygen
 from lotproof.runner.record.verify import verify_run
 
@@ -103,7 +104,7 @@ def test_prov_document_structure(record: Path) -> None:
     inputs = [e for e in entities if e.startswith("lp:input/")]
     results = [e for e in entities if e.startswith("lp:result/")]
     outputs = [e for e in entities if e.startswith("lp:output/")]
-    steps = [e for e in read_ledger(record) if e["type"] == "step"]
+    steps = [e for e in RunFolder(record).events() if e["type"] == "step"]
     assert len(inputs) == 2
     assert len(results) == len(steps) == 4
     assert entities["lp:result/disc-00.tif/spots"]["lp:checksum"] == steps[0]["checksum"]
@@ -117,7 +118,7 @@ def test_prov_document_structure(record: Path) -> None:
     assert ("lp:result/disc-01.tif/stats", "lp:step/disc-01.tif/stats") in generated
     agents = document["agent"]
     assert any(a.startswith("lp:agent/lotproof/") for a in agents)
-    user = read_ledger(record)[0]["user"]
+    user = RunFolder(record).events()[0]["user"]
     assert user is None or f"lp:agent/user/{quote(user, safe='-._~')}" in agents
     for relation in document["wasAssociatedWith"].values():
         assert relation["prov:agent"] in agents and relation["prov:activity"] in activities

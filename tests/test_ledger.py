@@ -29,9 +29,9 @@ from lotproof.runner.record.ledger import (
     LedgerWriter,
     canonical,
     line_hash,
-    read_ledger,
     write_sha256sums,
 )
+from lotproof.runner.record.reading import RunFolder
 from lotproof.runner.record.signing import SigningError, keygen, sign_seal, write_signature
 from lotproof.runner.record.verify import verify_run
 
@@ -244,8 +244,8 @@ def test_a_complete_record_is_intact(record: Path) -> None:
     assert report.problems == []
     assert report.seal == line_hash((record / LEDGER_FILE).read_bytes().splitlines()[-1])
     assert report.signature == "absent"
-    assert report.checked_files == len(read_ledger(record)) - len(
-        [e for e in read_ledger(record) if e["type"] != "output"]
+    assert report.checked_files == len(RunFolder(record).events()) - len(
+        [e for e in RunFolder(record).events() if e["type"] != "output"]
     )
     assert report.exit_code == EXIT_OK
 
@@ -299,7 +299,7 @@ def test_truncated_ledger_is_unfinished_not_intact(record: Path, tmp_path: Path)
     assert "images.csv: not recorded in the ledger (written after its last event)" in report.problems
     assert report.exit_code == EXIT_INTEGRITY
     with pytest.raises(LedgerError, match="never finished"):
-        read_ledger(run)
+        RunFolder(run).events()
 
 
 def test_truncated_mid_line_is_altered(record: Path, tmp_path: Path) -> None:
@@ -396,7 +396,7 @@ def test_every_flip_in_the_last_line_is_caught_by_the_seal(record: Path, data: s
 
 
 def _outputs(record: Path) -> list[str]:
-    return [e["path"] for e in read_ledger(record) if e["type"] == "output"]
+    return [e["path"] for e in RunFolder(record).events() if e["type"] == "output"]
 
 
 @settings(max_examples=400, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])

@@ -16,7 +16,7 @@ from lotproof.runner.cli.main import main
 from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INTEGRITY
 from lotproof.runner.evaluate.cache import DiskStore
 from lotproof.runner.jobs.rerun import RerunRefused, rerun
-from lotproof.runner.record.ledger import read_ledger
+from lotproof.runner.record.reading import RunFolder
 from lotproof.runner.record.verify import verify_run
 from lotproof.steps import REGISTRY
 
@@ -70,7 +70,7 @@ def recorded(tmp_path: Path) -> tuple[Path, Path]:
 
 def test_a_run_writes_a_sealed_ledger(recorded: tuple[Path, Path]) -> None:
     run_dir, _ = recorded
-    events = read_ledger(run_dir)
+    events = RunFolder(run_dir).events()
     types = [e["type"] for e in events]
     assert types[:2] == ["run-start", "recipe"] and types[-1] == "run-end"
     assert types.count("image") == 4 and types.count("input") == 3 and types.count("step") == 9
@@ -89,7 +89,7 @@ def test_rerun_is_identical(recorded: tuple[Path, Path], tmp_path: Path) -> None
     assert report.exit_code == 0
     assert report.compared > 0
     assert report.rerun.run_dir.parent == tmp_path / "reruns"
-    start = read_ledger(report.rerun.run_dir)[0]
+    start = RunFolder(report.rerun.run_dir).events()[0]
     assert start["rerun_of"] == verify_run(run_dir).seal
     # never the cache: everything computed again
     assert report.rerun.step_counts()["reused"] == 0

@@ -10,7 +10,6 @@ value, every object row and every verdict with the record.
 
 from __future__ import annotations
 
-import csv
 import os
 from collections import defaultdict
 from dataclasses import dataclass, field
@@ -24,7 +23,8 @@ from lotproof.runner.evaluate.hashing import file_sha256
 from lotproof.runner.evaluate.inputs import Sample
 from lotproof.runner.jobs.run import RunSummary, run_lot
 from lotproof.runner.recipe.load import parse_recipe
-from lotproof.runner.record.ledger import read_ledger
+from lotproof.runner.record.layout import IMAGES_FILE, OBJECTS_FILE, RECIPE_FILE
+from lotproof.runner.record.reading import RunFolder
 from lotproof.runner.record.verify import verify_run
 
 __all__ = ["RerunRefused", "Difference", "RerunReport", "rerun"]
@@ -154,12 +154,6 @@ def _locate_inputs(events: list[dict[str, Any]], recorded_lot: Path, lot: Path |
     return base, samples
 
 
-def _csv_rows(path: Path) -> tuple[list[str], list[list[str]]]:
-    with path.open(newline="") as handle:
-        rows = list(csv.reader(handle))
-    return (rows[0], rows[1:]) if rows else ([], [])
-
-
 def rerun(run_dir: Path, *, lot: Path | None = None, out: Path | None = None, strict: bool = False) -> RerunReport:
     """Repeat the run recorded in ``run_dir`` and compare (see the module docstring)."""
     run_dir = Path(run_dir)
@@ -167,9 +161,10 @@ def rerun(run_dir: Path, *, lot: Path | None = None, out: Path | None = None, st
     if report.status != "intact":
         first = report.problems[0] if report.problems else report.status
         raise RerunRefused(f"{run_dir}: the record is {report.status}: {first}", EXIT_INTEGRITY)
-    events = read_ledger(run_dir)
+    folder = RunFolder(run_dir)
+    events = folder.events()
     start = events[0]
-    recipe = parse_recipe((run_dir / "recipe.yaml").read_bytes(), str(run_dir / "recipe.yaml"))
+    recipe = parse_recipe(folder.recipe(), str(run_dir / RECIPE_FILE))
     now = environment()
     env_diffs = environment_differences(start, now)
     if strict:
@@ -192,11 +187,11 @@ def rerun(run_dir: Path, *, lot: Path | None = None, out: Path | None = None, st
         rerun_of=report.seal,
     )
     result = RerunReport(original=run_dir, rerun=summary, environment=env_diffs)
-    _compare(run_dir, events, summary, result)
+    _compare(folder, events, summary, result)
     return result
 
 
-def _compare(run_dir: Path, events: list[dict[str, Any]], summary: RunSummary, report: RerunReport) -> None:
+def _compare(folder: RunFolder, events: list[dict[str, Any]], summary: RunSummary, report: RerunReport) -> None:
     recorded_steps = {(e["image"], e["step"]): e.get("checksum") for e in events if e["type"] == "step"}
     recorded_status = {e["image"]: (e["status"], e["reason"]) for e in events if e["type"] == "image"}
     order = summary.recipe.order
@@ -217,9 +212,10 @@ def _compare(run_dir: Path, events: list[dict[str, Any]], summary: RunSummary, r
                 report.differences.append(
                     Difference(r.id, f"step {step} result checksum", old[:16] + "...", new[step][:16] + "...")
                 )
-    for name in ("images.csv", "objects.csv"):
-        old_header, old_rows = _csv_rows(run_dir / name)
-        new_header, new_rows = _csv_rows(summary.run_dir / name)
+    rerun_folder = RunFolder(summary.run_dir)
+    for name in (IMAGES_FILE, OBJECTS_FILE):
+        old_header, old_rows = folder.csv(name)
+        new_header, new_rows = rerun_folder.csv(name)
         if old_header != new_header:
             report.differences.append(Difference("(lot)", f"{name} columns", ",".join(old_header), ",".join(new_header)))
             continue
@@ -228,7 +224,7 @@ def _compare(run_dir: Path, events: list[dict[str, Any]], summary: RunSummary, r
                 report.compared += 1
                 if a != b:
                     image = old[0] if old else "?"
-                    where = column if name == "images.csv" else f"object row {i + 1}: {column}"
+                    where = column if name == IMAGES_FILE else f"object row {i + 1}: {column}"
                     report.differences.append(Difference(image, where, a, b))
         if len(old_rows) != len(new_rows):
             report.differences.append(Difference("(lot)", f"{name} rows", str(len(old_rows)), str(len(new_rows))))

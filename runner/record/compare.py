@@ -14,8 +14,6 @@ that reads back to the same float), so "equal" means bit-for-bit equal.
 
 from __future__ import annotations
 
-import csv
-import json
 import math
 import re
 from dataclasses import dataclass, field
@@ -23,6 +21,8 @@ from pathlib import Path
 from typing import Any
 
 from lotproof.runner.errors import InputError
+from lotproof.runner.record.layout import IMAGES_FILE, VERDICTS_FILE
+from lotproof.runner.record.reading import RunFolder
 
 __all__ = ["ValueDelta", "VerdictChange", "LimitComparison", "RunComparison", "compare_runs"]
 
@@ -203,16 +203,11 @@ class _Run:
 
 
 def _read_run(run: Path) -> _Run:
-    run = Path(run)
-    images_csv, verdicts_json = run / "images.csv", run / "verdicts.json"
-    try:
-        text = images_csv.read_text(encoding="utf-8")
-        verdicts = json.loads(verdicts_json.read_text(encoding="utf-8"))
-    except FileNotFoundError as err:
-        raise InputError(f"{err.filename}: missing; is {run} a run folder?") from None
-    except (OSError, UnicodeDecodeError, ValueError) as err:
-        raise InputError(f"{run}: cannot read images.csv / verdicts.json ({err})") from None
-    rows = list(csv.reader(text.splitlines()))
+    folder = RunFolder(run, error=InputError)
+    images_csv, verdicts_json = folder.path / IMAGES_FILE, folder.path / VERDICTS_FILE
+    verdicts = folder.json(VERDICTS_FILE)
+    header, body = folder.csv(IMAGES_FILE, required=True)
+    rows = [header, *body] if header else []
     if not rows or rows[0][:1] != ["image"]:
         raise InputError(f"{images_csv}: no header starting with 'image'")
     header = rows[0]
@@ -231,7 +226,7 @@ def _read_run(run: Path) -> _Run:
         images[row[0]] = dict(zip(header, row, strict=True))
     if not isinstance(verdicts, dict) or not isinstance(verdicts.get("limits", {}), dict):
         raise InputError(f"{verdicts_json}: not a verdicts document")
-    return _Run(run, images, columns, limit_columns, verdicts)
+    return _Run(folder.path, images, columns, limit_columns, verdicts)
 
 
 def _limit_value(doc: dict[str, Any]) -> float | None:

@@ -1,6 +1,6 @@
 """Exports of a run record in open formats: an in-toto attestation and W3C PROV-JSON.
 
-Both are built from the run folder's ledger alone (:func:`lotproof.runner.record.ledger.read_ledger`
+Both are built from the run folder's ledger alone (:meth:`lotproof.runner.record.reading.RunFolder.events`
 checks its chain first and refuses a broken or unfinished one), so what they state
 is what the sealed record states. The one exception is the step graph for PROV's
 ``used`` relations when step events do not carry it: then the run folder's
@@ -31,8 +31,9 @@ from pathlib import Path
 from typing import Any
 from urllib.parse import quote
 
-from lotproof.runner.record.layout import LEDGER_FILE
-from lotproof.runner.record.ledger import LedgerError, canonical, line_hash, read_ledger
+from lotproof.runner.record.layout import LEDGER_FILE, RECIPE_FILE
+from lotproof.runner.record.ledger import LedgerError, canonical, line_hash
+from lotproof.runner.record.reading import RunFolder
 from lotproof.runner.record.signing import load_private_key
 
 __all__ = [
@@ -67,7 +68,8 @@ def _fields(event: dict[str, Any], *drop: str) -> dict[str, Any]:
 
 
 def _seal(run_dir: Path) -> str:
-    last = (Path(run_dir) / LEDGER_FILE).read_bytes().rstrip(b"\n").rsplit(b"\n", 1)[-1]
+    data = RunFolder(run_dir, error=LedgerError).bytes(LEDGER_FILE) or b""
+    last = data.rstrip(b"\n").rsplit(b"\n", 1)[-1]
     return line_hash(last)
 
 
@@ -85,7 +87,7 @@ def in_toto_statement(run_dir: Path) -> dict[str, Any]:
     LedgerError
         When the ledger is missing, broken or unfinished.
     """
-    events = read_ledger(run_dir)
+    events = RunFolder(run_dir).events()
     start, recipe, end = _one(events, "run-start"), _one(events, "recipe"), events[-1]
     outputs = sorted(_of_type(events, "output"), key=lambda e: e["path"])
     subject = [{"name": e["path"], "digest": {"sha256": e["sha256"]}} for e in outputs]
@@ -181,11 +183,11 @@ def _step_sources(run_dir: Path, events: list[dict[str, Any]]) -> dict[str, list
     if sources or not _of_type(events, "step"):
         return sources
     recipe_event = _one(events, "recipe")
-    path = Path(run_dir) / "recipe.yaml"
-    try:
-        raw = path.read_bytes()
-    except OSError:
+    folder = RunFolder(run_dir, error=LedgerError)
+    path = folder.path / RECIPE_FILE
+    if not folder.exists(RECIPE_FILE):
         return {}
+    raw = folder.recipe()
     if hashlib.sha256(raw).hexdigest() != recipe_event.get("sha256"):
         raise LedgerError(f"{path}: its sha256 is not the one the ledger recorded; verify the run")
     from lotproof.runner.recipe.load import parse_recipe
@@ -213,7 +215,7 @@ def prov_document(run_dir: Path) -> dict[str, Any]:
     LedgerError
         When the ledger is missing, broken or unfinished.
     """
-    events = read_ledger(run_dir)
+    events = RunFolder(run_dir).events()
     start, recipe, end = _one(events, "run-start"), _one(events, "recipe"), events[-1]
     tool = start.get("tool")
     version = tool.get("version") if isinstance(tool, dict) else tool

@@ -52,10 +52,8 @@ __all__ = [
     "LedgerWriteError",
     "LedgerWriter",
     "canonical",
-    "ledger_events",
     "line_hash",
     "parse_ledger",
-    "read_ledger",
     "write_sha256sums",
 ]
 
@@ -329,53 +327,3 @@ def parse_ledger(data: bytes, problems: list[str]) -> list[LedgerLine]:
         lines.append(LedgerLine(number, raw, digest, event))
         expected_prev = digest
     return lines
-
-
-def read_ledger(run_dir: Path) -> list[dict[str, Any]]:
-    """The events of ``run_dir``'s ledger, after checking the chain.
-
-    Raises
-    ------
-    LedgerError
-        When the ledger is missing, its chain is broken, or the run never finished
-        (no ``run-end`` as the last event). Output files are not checked here; use
-        :func:`verify_run` for that.
-    """
-    path = Path(run_dir) / LEDGER_FILE
-    try:
-        data = path.read_bytes()
-    except FileNotFoundError:
-        raise LedgerError(f"{path}: no ledger; not a run folder, or the run never started") from None
-    except OSError as err:
-        raise LedgerError(f"{path}: cannot read ({err.strerror})") from None
-    problems: list[str] = []
-    lines = parse_ledger(data, problems)
-    if problems:
-        raise LedgerError(f"{path}: {problems[0]}")
-    events = [line.event for line in lines if line.event is not None]
-    if not events or events[-1].get("type") != "run-end":
-        raise LedgerError(f"{path}: the run never finished (no run-end event)")
-    return events
-
-
-def ledger_events(run_dir: Path) -> list[dict[str, Any]]:
-    """The events of every line of ``run_dir``'s ledger that parses, chain unchecked.
-
-    For showing a record whatever its state (the report of a run that is still
-    being written, or of one that :func:`~lotproof.runner.record.verify.verify_run`
-    found altered, which the report then says); never for judging it. A missing
-    ledger gives no events.
-
-    Raises
-    ------
-    LedgerError
-        When the ledger exists but cannot be read.
-    """
-    path = Path(run_dir) / LEDGER_FILE
-    try:
-        data = path.read_bytes()
-    except FileNotFoundError:
-        return []
-    except OSError as err:
-        raise LedgerError(f"{path}: cannot read ({err.strerror})") from None
-    return [line.event for line in parse_ledger(data, []) if line.event is not None]

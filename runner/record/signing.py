@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from lotproof.runner.errors import EXIT_INVALID, LotproofError
-from lotproof.runner.files import write_file
+from lotproof.runner.files import read_file, write_file
 from lotproof.runner.record.layout import SIGNATURE_FILE, inside_run_folder, is_within
 from lotproof.runner.record.ledger import LedgerWriteError
 
@@ -29,6 +29,8 @@ __all__ = [
 ]
 
 _HEX64 = re.compile(r"^[0-9a-f]{64}$")
+#: a PEM key or a signature file is a few hundred bytes; anything far larger is not one
+_MAX_KEY_BYTES = 64 * 1024
 
 
 class SigningError(LotproofError, ValueError):
@@ -43,7 +45,7 @@ def load_public_key(path: Path) -> Any:
     from cryptography.hazmat.primitives.serialization import load_pem_public_key
 
     try:
-        key = load_pem_public_key(Path(path).read_bytes())
+        key = load_pem_public_key(read_file(Path(path), max_bytes=_MAX_KEY_BYTES))
     except OSError as err:
         raise SigningError(f"{path}: cannot read the public key ({err.strerror})") from None
     except ValueError:
@@ -59,7 +61,7 @@ def load_private_key(path: Path) -> Any:
     from cryptography.hazmat.primitives.serialization import load_pem_private_key
 
     try:
-        key = load_pem_private_key(Path(path).read_bytes(), password=None)
+        key = load_pem_private_key(read_file(Path(path), max_bytes=_MAX_KEY_BYTES), password=None)
     except OSError as err:
         raise SigningError(f"{path}: cannot read the private key ({err.strerror})") from None
     except (ValueError, TypeError):
@@ -72,7 +74,7 @@ def load_private_key(path: Path) -> Any:
 def read_signature(path: Path) -> bytes | None:
     """The 64 signature bytes of ``seal.sig`` (one line of base64), or None when it is not that."""
     try:
-        text = path.read_bytes().decode("ascii")
+        text = read_file(path, max_bytes=_MAX_KEY_BYTES).decode("ascii")
     except (OSError, UnicodeDecodeError):
         return None
     if not text.endswith("\n") or text.count("\n") != 1:

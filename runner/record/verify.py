@@ -22,7 +22,7 @@ from lotproof.runner.record.layout import (
     SUMS_FILE,
     safe_relative,
 )
-from lotproof.runner.record.ledger import parse_ledger
+from lotproof.runner.record.reading import RunFolder, RunFolderReadError
 from lotproof.runner.record.signing import load_public_key, read_signature
 
 __all__ = ["SignatureStatus", "VerifyReport", "VerifyStatus", "verify_run"]
@@ -95,8 +95,8 @@ def _check_sums(run_dir: Path, recorded: dict[str, str], problems: list[str]) ->
     """Check every line of SHA256SUMS; returns the names it lists."""
     listed: set[str] = set()
     try:
-        text = (run_dir / SUMS_FILE).read_bytes().decode("utf-8")
-    except (OSError, UnicodeDecodeError):
+        text = RunFolder(run_dir).text(SUMS_FILE) or ""
+    except RunFolderReadError:
         problems.append(f"{SUMS_FILE}: cannot be read as text")
         return listed
     for number, line in enumerate(text.splitlines(), 1):
@@ -140,14 +140,12 @@ def verify_run(
     """
     run_dir = Path(run_dir)
     problems: list[str] = []
-    ledger = run_dir / LEDGER_FILE
     try:
-        data = ledger.read_bytes()
-    except FileNotFoundError:
-        return VerifyReport(run_dir, "altered", None, [f"{LEDGER_FILE}: missing; no record to verify"])
-    except OSError as err:
-        return VerifyReport(run_dir, "altered", None, [f"{LEDGER_FILE}: cannot read ({err.strerror})"])
-    lines = parse_ledger(data, problems)
+        lines = RunFolder(run_dir).ledger_lines(problems)
+    except RunFolderReadError as err:
+        return VerifyReport(run_dir, "altered", None, [str(err)])
+    if not lines and problems:  # no ledger at all
+        return VerifyReport(run_dir, "altered", None, problems)
     seal = lines[-1].hash if lines else None
     events = [(line.number, line.event) for line in lines if line.event is not None]
 

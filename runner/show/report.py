@@ -21,10 +21,8 @@ style (not the user's ``matplotlibrc``), and every image is embedded as a
 from __future__ import annotations
 
 import base64
-import csv
 import html
 import io
-import json
 import math
 import re
 from dataclasses import dataclass, field
@@ -35,11 +33,19 @@ from lotproof.runner import __version__
 from lotproof.runner.errors import EXIT_INVALID, LotproofError
 from lotproof.runner.files import write_file
 from lotproof.runner.record.folder import CAUTION, write_bytes
-from lotproof.runner.record.layout import LEDGER_FILE, image_folder, is_within
+from lotproof.runner.record.layout import (
+    IMAGES_FILE,
+    INPUTS_FILE,
+    OBJECTS_FILE,
+    REPORT_FILE,
+    RESOLVED_FILE,
+    VERDICTS_FILE,
+    is_within,
+)
+from lotproof.runner.record.reading import RunFolder
 from lotproof.runner.record.verify import verify_run
 
 __all__ = [
-    "REPORT_FILE",
     "VERDICT_MARKS",
     "ReportError",
     "RunFiles",
@@ -50,9 +56,6 @@ __all__ = [
     "rebuild_report",
     "write_report",
 ]
-
-#: the report's name inside a run folder
-REPORT_FILE = "report.html"
 
 #: verdict -> the word and symbol printed for it (never colour alone)
 VERDICT_MARKS = {
@@ -105,50 +108,6 @@ class RunFiles:
         return next((e for e in self.events if e.get("type") == kind), {})
 
 
-def _read_json(path: Path, required: bool) -> Any:
-    try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        if required:
-            raise ReportError(f"{path.parent}: not a run folder (no {path.name})") from None
-        return {}
-    except (OSError, ValueError) as err:
-        raise ReportError(f"{path}: cannot be read as JSON ({err})") from None
-
-
-def _read_csv(path: Path) -> tuple[list[str], list[list[str]]]:
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        return [], []
-    except OSError as err:
-        raise ReportError(f"{path}: cannot be read ({err.strerror})") from None
-    rows = list(csv.reader(io.StringIO(text)))
-    return (rows[0], rows[1:]) if rows else ([], [])
-
-
-def _ledger_lines(path: Path) -> list[dict[str, Any]]:
-    """Every event that parses, up to the first that does not (a run still writing)."""
-    try:
-        data = path.read_bytes()
-    except FileNotFoundError:
-        return []
-    except OSError as err:
-        raise ReportError(f"{path}: cannot be read ({err.strerror})") from None
-    events = []
-    for line in data.split(b"\n"):
-        if not line:
-            continue
-        try:
-            event = json.loads(line)
-        except ValueError:
-            break
-        if not isinstance(event, dict):
-            break
-        events.append(event)
-    return events
-
-
 def _to_float(text: str) -> float | None:
     if text == "":
         return None
@@ -158,26 +117,19 @@ def _to_float(text: str) -> float | None:
         return None
 
 
-def _read_sizes(path: Path, files: RunFiles) -> None:
+def _read_sizes(folder: RunFolder, files: RunFiles) -> None:
     """The size column of objects.csv, read row by row (a lot can have millions of objects)."""
-    try:
-        handle = path.open(encoding="utf-8", newline="")
-    except FileNotFoundError:
+    rows = folder.csv_rows(OBJECTS_FILE)
+    header = next(rows, [])
+    column = next((c for c in _SIZE_COLUMNS if c in header), "")
+    if not column or "step" not in header:
         return
-    except OSError as err:
-        raise ReportError(f"{path}: cannot be read ({err.strerror})") from None
-    with handle:
-        reader = csv.reader(handle)
-        header = next(reader, [])
-        column = next((c for c in _SIZE_COLUMNS if c in header), "")
-        if not column or "step" not in header:
-            return
-        at, step_at = header.index(column), header.index("step")
-        for row in reader:
-            value = _to_float(row[at]) if at < len(row) else None
-            if value is not None and math.isfinite(value):
-                files.sizes.setdefault(row[step_at], []).append(value)
-        files.size_column = column
+    at, step_at = header.index(column), header.index("step")
+    for row in rows:
+        value = _to_float(row[at]) if at < len(row) else None
+        if value is not None and math.isfinite(value):
+            files.sizes.setdefault(row[step_at], []).append(value)
+    files.size_column = column
 
 
 def read_run_files(run_dir: Path, ledger_events: list[dict[str, Any]] | None = None) -> RunFiles:
@@ -188,23 +140,21 @@ def read_run_files(run_dir: Path, ledger_events: list[dict[str, Any]] | None = N
     ReportError
         When ``run_dir`` has no ``verdicts.json`` or a file cannot be read.
     """
-    run_dir = Path(run_dir)
-    files = RunFiles(run_dir, _read_json(run_dir / "verdicts.json", required=True))
-    files.resolved = _read_json(run_dir / "resolved.json", required=False)
-    files.inputs = _read_json(run_dir / "inputs.json", required=False)
-    header, rows = _read_csv(run_dir / "images.csv")
+    folder = RunFolder(run_dir, error=ReportError)
+    files = RunFiles(folder.path, folder.verdicts())
+    files.resolved = folder.json(RESOLVED_FILE, required=False)
+    files.inputs = folder.json(INPUTS_FILE, required=False)
+    header, rows = folder.csv(IMAGES_FILE)
     files.image_header = header
     files.image_rows = [dict(zip(header, row, strict=False)) for row in rows]
-    _read_sizes(run_dir / "objects.csv", files)
-    files.events = list(ledger_events) if ledger_events is not None else _ledger_lines(run_dir / LEDGER_FILE)
-    ids = list(files.verdicts.get("image_verdicts", {}))
-    for image_id in ids:
-        stem = image_folder(image_id).replace("/", "__")
+    _read_sizes(folder, files)
+    files.events = list(ledger_events) if ledger_events is not None else folder.ledger_events()
+    for image_id in files.verdicts.get("image_verdicts", {}):
         found = {}
         for name in ("thumbnail", "overlay"):
-            path = run_dir / "figures" / f"{stem}.{name}.png"
-            if path.is_file():
-                found[name] = path.read_bytes()
+            data = folder.figure(image_id, name)
+            if data is not None:
+                found[name] = data
         files.figures[image_id] = found
     return files
 
@@ -782,7 +732,7 @@ def rebuild_report(run_dir: Path, out: Path | None = None) -> tuple[Path, str]:
         Where the report was written, and the record's status.
     """
     run_dir = Path(run_dir)
-    if not (run_dir / "verdicts.json").is_file():
+    if not (run_dir / VERDICTS_FILE).is_file():
         raise ReportError(f"{run_dir}: not a run folder (no verdicts.json)")
     out = Path(out) if out is not None else default_report_path(run_dir)
     check_outside(run_dir, out)
