@@ -64,9 +64,13 @@ def _timed_map(executor, recipe, lot: Path) -> float:  # type: ignore[no-untyped
 
 
 def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser = argparse.ArgumentParser(
+        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
+    )
     parser.add_argument("--quick", action="store_true", help="4 images of 1024x1024")
-    parser.add_argument("--repeat", type=int, default=2, help="runs of each executor (best is kept)")
+    parser.add_argument(
+        "--repeat", type=int, default=2, help="runs of each executor (best is kept)"
+    )
     parser.add_argument("--tiny", type=int, default=200, help="images of the per-task overhead lot")
     args = parser.parse_args()
     n, side = (4, 1024) if args.quick else (16, 2048)
@@ -76,7 +80,10 @@ def main() -> None:
         (work / "recipe.yaml").write_text(RECIPE)
         recipe = load_recipe(work / "recipe.yaml")
         lot = make_lot(work / "lot", n, side)
-        tiny = [make_lot(work / "tiny-1", args.tiny, 16), make_lot(work / "tiny-2", 2 * args.tiny, 16)]
+        tiny = [
+            make_lot(work / "tiny-1", args.tiny, 16),
+            make_lot(work / "tiny-2", 2 * args.tiny, 16),
+        ]
         # warm the imports and any compiled kernels (and their on-disk cache) outside the timings
         run_lot(recipe, make_lot(work / "warm", 1, 256), work / "runs", jobs=1)
 
@@ -87,38 +94,62 @@ def main() -> None:
             pool_run = run_lot(recipe, lot, work / "runs", store=NullStore(), jobs=WORKERS).run_dir
             pool_s.append(time.perf_counter() - started)
             started = time.perf_counter()
-            with open_executor("dask-local", jobs=WORKERS, scheduler=None, workers=WORKERS) as executor:
-                dask_run = run_lot(recipe, lot, work / "runs", store=NullStore(), executor=executor).run_dir
+            with open_executor(
+                "dask-local", jobs=WORKERS, scheduler=None, workers=WORKERS
+            ) as executor:
+                dask_run = run_lot(
+                    recipe, lot, work / "runs", store=NullStore(), executor=executor
+                ).run_dir
             dask_s.append(time.perf_counter() - started)
         ratio = min(dask_s) / min(pool_s)
-        figures.append((f"1 dask-local --workers {WORKERS} / --jobs {WORKERS}, end to end",
-                        f"{ratio:.3f}x ({min(dask_s):.2f} s vs {min(pool_s):.2f} s)", "<= 1.25x",
-                        ratio <= 1.25))
+        figures.append(
+            (
+                f"1 dask-local --workers {WORKERS} / --jobs {WORKERS}, end to end",
+                f"{ratio:.3f}x ({min(dask_s):.2f} s vs {min(pool_s):.2f} s)",
+                "<= 1.25x",
+                ratio <= 1.25,
+            )
+        )
 
         started = time.perf_counter()
         with open_executor("dask-local", jobs=WORKERS, scheduler=None, workers=WORKERS) as executor:
             startup = time.perf_counter() - started
             # a first lot on the new workers imports the steps and loads compiled kernels there
-            run_lot(recipe, make_lot(work / "warm-dask", WORKERS, 256), work / "runs", executor=executor)
+            run_lot(
+                recipe, make_lot(work / "warm-dask", WORKERS, 256), work / "runs", executor=executor
+            )
             started = time.perf_counter()
             run_lot(recipe, lot, work / "runs", store=NullStore(), executor=executor)
             open_s = time.perf_counter() - started
-            figures.append(("2 the same on an open cluster / --jobs 2",
-                            f"{open_s / min(pool_s):.3f}x ({open_s:.2f} s; cluster start-up "
-                            f"{startup:.2f} s)", "reported", None))
+            figures.append(
+                (
+                    "2 the same on an open cluster / --jobs 2",
+                    f"{open_s / min(pool_s):.3f}x ({open_s:.2f} s; cluster start-up "
+                    f"{startup:.2f} s)",
+                    "reported",
+                    None,
+                )
+            )
 
             tiny_dask = [_timed_map(executor, recipe, lot_) for lot_ in tiny]
         tiny_here = [_timed_map(LocalExecutor(1), recipe, lot_) for lot_ in tiny]
         # the slope between a lot of N and one of 2N images leaves out what a run costs once
         extra_s = (tiny_dask[1] - tiny_dask[0]) - (tiny_here[1] - tiny_here[0]) / WORKERS
         overhead_ms = extra_s * WORKERS / args.tiny * 1000
-        figures.append((f"3 per-task overhead ({args.tiny} more images of 16x16)",
-                        f"{overhead_ms:.2f} ms per image and worker (cluster {tiny_dask[0]:.2f} s / "
-                        f"{tiny_dask[1]:.2f} s, this process {tiny_here[0]:.2f} s / {tiny_here[1]:.2f} s)",
-                        "reported", None))
+        figures.append(
+            (
+                f"3 per-task overhead ({args.tiny} more images of 16x16)",
+                f"{overhead_ms:.2f} ms per image and worker (cluster {tiny_dask[0]:.2f} s / "
+                f"{tiny_dask[1]:.2f} s, this process {tiny_here[0]:.2f} s / {tiny_here[1]:.2f} s)",
+                "reported",
+                None,
+            )
+        )
 
         same = pool_run is not None and dask_run is not None and _same_files(pool_run, dask_run)
-        figures.append(("4 run files of --jobs 2 and dask-local identical", str(same), "True", same))
+        figures.append(
+            ("4 run files of --jobs 2 and dask-local identical", str(same), "True", same)
+        )
     finally:
         shutil.rmtree(work, ignore_errors=True)
 

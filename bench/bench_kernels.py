@@ -121,7 +121,7 @@ def particles(seed: int = 4) -> np.ndarray:
     n = 2300
     cy, cx = rng.uniform(0, SIDE, n), rng.uniform(0, SIDE, n)
     radius = rng.uniform(2.5, 9.0, n)
-    for y0, x0, r in zip(cy, cx, radius):
+    for y0, x0, r in zip(cy, cx, radius, strict=False):
         lo_y, hi_y = int(max(0, y0 - r - 1)), int(min(SIDE, y0 + r + 2))
         lo_x, hi_x = int(max(0, x0 - r - 1)), int(min(SIDE, x0 + r + 2))
         sub_y, sub_x = yy[lo_y:hi_y, lo_x:hi_x], xx[lo_y:hi_y, lo_x:hi_x]
@@ -231,11 +231,17 @@ def bench_first_call() -> None:
     with tempfile.TemporaryDirectory() as cache:
         env["NUMBA_CACHE_DIR"] = cache
         cold = subprocess.run(
-            [sys.executable, "-c", code], cwd=ROOT, env=env, capture_output=True, text=True,
+            [sys.executable, "-c", code],
+            cwd=ROOT,
+            env=env,
+            capture_output=True,
+            text=True,
             check=True,
         ).stdout.split()
     print(f"  import numba + kernels module: {float(warm[0]) * 1e3:.0f} ms")
-    print(f"  warm_up(), compiled code loaded from the on-disk cache: {float(warm[1]) * 1e3:.0f} ms")
+    print(
+        f"  warm_up(), compiled code loaded from the on-disk cache: {float(warm[1]) * 1e3:.0f} ms"
+    )
     print(f"  warm_up(), empty cache (compiles 7 dtypes x 4 kernels): {float(cold[1]):.1f} s")
 
 
@@ -261,8 +267,13 @@ def bench_gray(quick: bool) -> None:
         )
         if r == 15:
             t_ours = timed(lambda fp=fp: _morph.erode(img8, fp))
-            target("gray erosion, disk r=15, uint8", "ours / one memory copy",
-                   t_ours / copy_time(img8), 15.0, "<=")
+            target(
+                "gray erosion, disk r=15, uint8",
+                "ours / one memory copy",
+                t_ours / copy_time(img8),
+                15.0,
+                "<=",
+            )
     fp = fps.square(15.0)
     morph_case(
         "gray erosion, square 15, uint8",
@@ -294,14 +305,20 @@ def bench_gray(quick: bool) -> None:
         lambda: _morph.dilate(img8, fp7),
         lambda: cv_dilate(img8, fp7),
         lambda: skmorph.dilation(crop, skmorph.disk(7)),
-        img8, sk_scale=scale, sk_note=" (512^2 crop x16, once)", radius=7,
+        img8,
+        sk_scale=scale,
+        sk_note=" (512^2 crop x16, once)",
+        radius=7,
     )
     morph_case(
         "opening, disk r=7, uint8 (step 'open')",
         lambda: morph.open_(params7, img8, spacing=(1.0, 1.0)),
         lambda: cv_dilate(cv_erode(img8, fp7), fp7),
         lambda: skmorph.opening(crop, skmorph.disk(7)),
-        img8, sk_scale=scale, sk_note=" (512^2 crop x16, once)", radius=7,
+        img8,
+        sk_scale=scale,
+        sk_note=" (512^2 crop x16, once)",
+        radius=7,
         cv_note=" (erode+dilate)",
     )
     params15 = morph.BackgroundParams(footprint="disk", radius="15 px", features="bright")
@@ -311,7 +328,10 @@ def bench_gray(quick: bool) -> None:
         lambda: morph.subtract_background(params15, img8, spacing=(1.0, 1.0)),
         lambda: img8 - cv_dilate(cv_erode(img8, fp15), fp15),
         lambda: skmorph.white_tophat(crop, skmorph.disk(15)),
-        img8, sk_scale=scale, sk_note=" (512^2 crop x16, once)", radius=15,
+        img8,
+        sk_scale=scale,
+        sk_note=" (512^2 crop x16, once)",
+        radius=15,
         cv_note=" (img - open)",
     )
     params3 = morph.OutlineParams(footprint="disk", radius="3 px")
@@ -320,7 +340,9 @@ def bench_gray(quick: bool) -> None:
         lambda: morph.outline(params3, img8, spacing=(1.0, 1.0)),
         lambda: cv_dilate(img8, fp3) - cv_erode(img8, fp3),
         lambda: skmorph.dilation(img8, skmorph.disk(3)) - skmorph.erosion(img8, skmorph.disk(3)),
-        img8, radius=3, cv_note=" (dilate-erode)",
+        img8,
+        radius=3,
+        cv_note=" (dilate-erode)",
     )
     img16 = gray_image(np.uint16)
     crop16 = img16[:512, :512]
@@ -331,7 +353,10 @@ def bench_gray(quick: bool) -> None:
             lambda fp=fp: _morph.erode(img16, fp),
             lambda fp=fp: cv_erode(img16, fp),
             lambda r=r: skmorph.erosion(crop16, skmorph.disk(r)),
-            img16, sk_scale=scale, sk_note=" (512^2 crop x16, once)", radius=r,
+            img16,
+            sk_scale=scale,
+            sk_note=" (512^2 crop x16, once)",
+            radius=r,
         )
     imgf = gray_image(np.uint16).astype(np.float32)
     fp = fps.disk(7.0)
@@ -347,13 +372,23 @@ def bench_gray(quick: bool) -> None:
     print("\n== disk radii 1-30, gray erosion, 2048^2 uint8 (ours vs OpenCV) ==")
     for r in (1, 2, 3, 4, 5, 7, 10, 12, 15, 20, 25, 30):
         fp = fps.disk(float(r))
-        morph_case(f"disk r={r}", lambda fp=fp: _morph.erode(img8, fp),
-                   lambda fp=fp: cv_erode(img8, fp), None, img8)
+        morph_case(
+            f"disk r={r}",
+            lambda fp=fp: _morph.erode(img8, fp),
+            lambda fp=fp: cv_erode(img8, fp),
+            None,
+            img8,
+        )
     print("\n== squares 3-61, gray erosion, 2048^2 uint8 (ours vs OpenCV) ==")
     for side in (3, 5, 9, 15, 21, 31, 45, 61):
         fp = fps.square(float(side))
-        morph_case(f"square {side}", lambda fp=fp: _morph.erode(img8, fp),
-                   lambda fp=fp: cv_erode(img8, fp), None, img8)
+        morph_case(
+            f"square {side}",
+            lambda fp=fp: _morph.erode(img8, fp),
+            lambda fp=fp: cv_erode(img8, fp),
+            None,
+            img8,
+        )
 
 
 def bench_3d() -> None:
@@ -368,8 +403,10 @@ def bench_3d() -> None:
             lambda r=r: cv_ball_erode(vol, float(r)),
             lambda r=r: skmorph.erosion(sub, skmorph.ball(r)),
             vol,
-            sk_scale=vol.size / sub.size, sk_note=" (128^3 crop x8, once)",
-            radius=r, cv_note=" (per slab)",
+            sk_scale=vol.size / sub.size,
+            sk_note=" (128^3 crop x8, once)",
+            radius=r,
+            cv_note=" (per slab)",
         )
 
 
@@ -385,7 +422,8 @@ def bench_threshold_measure() -> tuple[np.ndarray, int]:
 
     background = morph.subtract_background(
         morph.BackgroundParams(footprint="disk", radius="25 px", features="bright"),
-        image, spacing=(1.0, 1.0),
+        image,
+        spacing=(1.0, 1.0),
     )
     mask = thr.threshold(params, background, spacing=(1.0, 1.0)).data
     labels = meas.label(meas.LabelParams(connectivity=8), mask, spacing=(1.0, 1.0))
@@ -393,14 +431,27 @@ def bench_threshold_measure() -> tuple[np.ndarray, int]:
     mparams = meas.MeasureParams(connectivity=8)
     t_meas = timed(lambda: meas.measure(mparams, labels, spacing=(1.0, 1.0)), 5)
     props = (
-        "label", "area", "equivalent_diameter_area", "centroid", "perimeter_crofton",
-        "feret_diameter_max", "axis_major_length", "axis_minor_length", "euler_number",
+        "label",
+        "area",
+        "equivalent_diameter_area",
+        "centroid",
+        "perimeter_crofton",
+        "feret_diameter_max",
+        "axis_major_length",
+        "axis_minor_length",
+        "euler_number",
     )
     t_rp = timed(lambda: skm.regionprops_table(labels, properties=props), 3)
     t_rp5 = timed(
         lambda: skm.regionprops_table(
-            labels, properties=("label", "area", "equivalent_diameter_area", "centroid",
-                                "perimeter_crofton")
+            labels,
+            properties=(
+                "label",
+                "area",
+                "equivalent_diameter_area",
+                "centroid",
+                "perimeter_crofton",
+            ),
         ),
         3,
     )
@@ -408,8 +459,9 @@ def bench_threshold_measure() -> tuple[np.ndarray, int]:
         f"  measure, {count} objects: ours (every column) {ms(t_meas)} | regionprops_table "
         f"(9 props) {ms(t_rp)} | (5 props) {ms(t_rp5)}"
     )
-    target(f"measure, {count} objects", "ours / regionprops_table (9 props)",
-           t_meas / t_rp, 0.25, "<=")
+    target(
+        f"measure, {count} objects", "ours / regionprops_table (9 props)", t_meas / t_rp, 0.25, "<="
+    )
     return image, count
 
 
@@ -417,11 +469,13 @@ def pipeline_ours(image: np.ndarray):
     spacing = (1.0, 1.0)
     level = morph.subtract_background(
         morph.BackgroundParams(footprint="disk", radius="25 px", features="bright"),
-        image, spacing=spacing,
+        image,
+        spacing=spacing,
     )
     mask = thr.threshold(thr.ThresholdParams(method="otsu"), level, spacing=spacing).data
-    clean = morph.open_(morph.MorphologyParams(footprint="disk", radius="2 px"), mask,
-                        spacing=spacing)
+    clean = morph.open_(
+        morph.MorphologyParams(footprint="disk", radius="2 px"), mask, spacing=spacing
+    )
     labels = meas.label(meas.LabelParams(connectivity=8), clean, spacing=spacing)
     return meas.measure(meas.MeasureParams(connectivity=8), labels, spacing=spacing)
 
@@ -432,8 +486,8 @@ def pipeline_skimage(image: np.ndarray):
     clean = skmorph.opening(mask, skmorph.disk(2))
     labels = skm.label(clean, connectivity=2)
     return skm.regionprops_table(
-        labels, properties=("label", "area", "equivalent_diameter_area", "centroid",
-                            "perimeter_crofton")
+        labels,
+        properties=("label", "area", "equivalent_diameter_area", "centroid", "perimeter_crofton"),
     )
 
 
@@ -442,15 +496,19 @@ def pipeline_opencv(image: np.ndarray):
     small = fps.disk(2.0).astype(np.uint8)
     opened = cv2.dilate(
         cv2.erode(image, big, borderType=cv2.BORDER_CONSTANT, borderValue=65535),
-        big, borderType=cv2.BORDER_CONSTANT, borderValue=0,
+        big,
+        borderType=cv2.BORDER_CONSTANT,
+        borderValue=0,
     )
     level = image - opened
     mask = (level > skf.threshold_otsu(level)).astype(np.uint8)
     clean = cv2.dilate(
         cv2.erode(mask, small, borderType=cv2.BORDER_CONSTANT, borderValue=1),
-        small, borderType=cv2.BORDER_CONSTANT, borderValue=0,
+        small,
+        borderType=cv2.BORDER_CONSTANT,
+        borderValue=0,
     )
-    n, labels, stats, centroids = cv2.connectedComponentsWithStats(clean, connectivity=8)
+    n, _labels, stats, centroids = cv2.connectedComponentsWithStats(clean, connectivity=8)
     area = stats[1:, cv2.CC_STAT_AREA].astype(np.float64)
     return n - 1, area, np.sqrt(4 * area / np.pi), centroids[1:]
 

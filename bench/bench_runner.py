@@ -84,7 +84,12 @@ def make_image(seed: int, side: int) -> np.ndarray:
     cx = rng.integers(0, side, n)
     r = rng.integers(2, 12, n)
     for y, x, rad in zip(cy, cx, r, strict=True):
-        y0, y1, x0, x1 = max(0, y - rad), min(side, y + rad + 1), max(0, x - rad), min(side, x + rad + 1)
+        y0, y1, x0, x1 = (
+            max(0, y - rad),
+            min(side, y + rad + 1),
+            max(0, x - rad),
+            min(side, x + rad + 1),
+        )
         sub = (yy[y0:y1, x0:x1] - y) ** 2 + (xx[y0:y1, x0:x1] - x) ** 2 <= rad * rad
         image[y0:y1, x0:x1][sub] = 8000
     return image.clip(0, 65535).astype(np.uint16)
@@ -110,7 +115,9 @@ def plain_loop(recipe_path: Path, lot: Path, out: Path) -> None:
         for name in recipe.order:
             step = recipe.steps[name]
             kind = REGISTRY[step.kind]
-            out_ = kind.func(resolve_params(step.params, spacing), *[data[s] for s in step.to], spacing=spacing)
+            out_ = kind.func(
+                resolve_params(step.params, spacing), *[data[s] for s in step.to], spacing=spacing
+            )
             if isinstance(out_, Output):
                 values.update({f"{name}.{k}": v for k, v in out_.values.items()})
                 out_ = out_.data
@@ -133,8 +140,16 @@ def skimage_script(image: np.ndarray) -> None:
     pores = level > filters.threshold_otsu(level)
     clean = morphology.opening(pores, morphology.disk(2))
     labels = measure.label(clean)
-    measure.regionprops_table(labels, properties=("area", "equivalent_diameter_area", "centroid",
-                                                  "perimeter_crofton", "euler_number"))
+    measure.regionprops_table(
+        labels,
+        properties=(
+            "area",
+            "equivalent_diameter_area",
+            "centroid",
+            "perimeter_crofton",
+            "euler_number",
+        ),
+    )
 
 
 def timed(fn, *args, **kwargs) -> float:  # type: ignore[no-untyped-def]
@@ -156,9 +171,13 @@ def peak_rss_child(recipe: Path, lot: Path, out: Path, jobs: int) -> int:
 
 
 def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser = argparse.ArgumentParser(
+        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
+    )
     parser.add_argument("--quick", action="store_true", help="4 images of 1024x1024")
-    parser.add_argument("--full-skimage", action="store_true", help="time scikit-image on 2 whole images")
+    parser.add_argument(
+        "--full-skimage", action="store_true", help="time scikit-image on 2 whole images"
+    )
     args = parser.parse_args()
     n, side = (4, 1024) if args.quick else (16, 2048)
     work = Path(tempfile.mkdtemp(prefix="lotproof-bench-"))
@@ -176,20 +195,38 @@ def main() -> None:
         cold_summary = run_lot(recipe, lot, work / "runs", store=store, jobs=1)
         cold = time.perf_counter() - started
         ratio = cold / plain
-        figures.append(("1 runner overhead: cold run / plain loop", f"{ratio:.3f}x "
-                        f"({cold:.2f} s vs {plain:.2f} s)", "<= 1.10x", ratio <= 1.10))
+        figures.append(
+            (
+                "1 runner overhead: cold run / plain loop",
+                f"{ratio:.3f}x ({cold:.2f} s vs {plain:.2f} s)",
+                "<= 1.10x",
+                ratio <= 1.10,
+            )
+        )
 
         image = tifffile.imread(sorted(lot.glob("*.tif"))[0])
         crop = image if args.full_skimage else image[:512, :512]
         ours_crop = timed(plain_loop_one, recipe, crop)
         sk = timed(skimage_script, crop)
         what = "whole image" if args.full_skimage else "512x512 crop"
-        figures.append((f"2 plain scikit-image / ours, per image ({what})",
-                        f"{sk / ours_crop:.1f}x ({sk:.2f} s vs {ours_crop:.3f} s)", "reported", None))
+        figures.append(
+            (
+                f"2 plain scikit-image / ours, per image ({what})",
+                f"{sk / ours_crop:.1f}x ({sk:.2f} s vs {ours_crop:.3f} s)",
+                "reported",
+                None,
+            )
+        )
 
         warm = timed(run_lot, recipe, lot, work / "runs", store=store, jobs=1)
-        figures.append(("3 warm rerun / cold", f"{warm / cold:.3f}x ({warm:.2f} s)", "<= 0.05x",
-                        warm / cold <= 0.05))
+        figures.append(
+            (
+                "3 warm rerun / cold",
+                f"{warm / cold:.3f}x ({warm:.2f} s)",
+                "<= 0.05x",
+                warm / cold <= 0.05,
+            )
+        )
 
         edited = work / "edited.yaml"
         edited.write_text(RECIPE.replace("connectivity: 8", "connectivity: 4"))
@@ -199,25 +236,55 @@ def main() -> None:
         computed = {s.step for r in partial.results for s in r.steps if s.cache == "computed"}
         share = sum(s.seconds for r in cold_summary.results for s in r.steps if s.step == "stats")
         bound = share + 0.05 * cold
-        figures.append(("4 last-step edit: steps computed", ", ".join(sorted(computed)), "stats only",
-                        computed == {"stats"}))
-        figures.append(("4 last-step edit: time", f"{partial_s:.2f} s", f"<= {bound:.2f} s",
-                        partial_s <= bound))
+        figures.append(
+            (
+                "4 last-step edit: steps computed",
+                ", ".join(sorted(computed)),
+                "stats only",
+                computed == {"stats"},
+            )
+        )
+        figures.append(
+            (
+                "4 last-step edit: time",
+                f"{partial_s:.2f} s",
+                f"<= {bound:.2f} s",
+                partial_s <= bound,
+            )
+        )
 
         one = timed(run_lot, recipe, lot, work / "runs", jobs=1)
         two_first = timed(run_lot, recipe, lot, work / "runs", jobs=2)
         two = timed(run_lot, recipe, lot, work / "runs", jobs=2)
-        figures.append(("5 --jobs 2 throughput / --jobs 1", f"{one / two:.2f}x ({two:.2f} s vs {one:.2f} s)",
-                        ">= 1.7x", one / two >= 1.7))
-        figures.append(("5 the same, first pool of the process", f"{one / two_first:.2f}x ({two_first:.2f} s)",
-                        "reported", None))
+        figures.append(
+            (
+                "5 --jobs 2 throughput / --jobs 1",
+                f"{one / two:.2f}x ({two:.2f} s vs {one:.2f} s)",
+                ">= 1.7x",
+                one / two >= 1.7,
+            )
+        )
+        figures.append(
+            (
+                "5 the same, first pool of the process",
+                f"{one / two_first:.2f}x ({two_first:.2f} s)",
+                "reported",
+                None,
+            )
+        )
 
         small = make_lot(work / "lot8", 8, side)
         big = make_lot(work / "lot64", 64, side)
         rss8 = peak_rss_child(recipe, small, work / "rss", 1)
         rss64 = peak_rss_child(recipe, big, work / "rss", 1)
-        figures.append(("6 peak RSS 64 images / 8 images", f"{rss64 / rss8:.3f}x ({rss64 // 1024} MiB vs "
-                        f"{rss8 // 1024} MiB)", "<= 1.2x", rss64 / rss8 <= 1.2))
+        figures.append(
+            (
+                "6 peak RSS 64 images / 8 images",
+                f"{rss64 / rss8:.3f}x ({rss64 // 1024} MiB vs {rss8 // 1024} MiB)",
+                "<= 1.2x",
+                rss64 / rss8 <= 1.2,
+            )
+        )
     finally:
         shutil.rmtree(work, ignore_errors=True)
 
@@ -235,7 +302,9 @@ def plain_loop_one(recipe_path: Path, image: np.ndarray) -> None:
     for name in recipe.order:
         step = recipe.steps[name]
         kind = REGISTRY[step.kind]
-        out = kind.func(resolve_params(step.params, (1.0, 1.0)), *[data[s] for s in step.to], spacing=(1.0, 1.0))
+        out = kind.func(
+            resolve_params(step.params, (1.0, 1.0)), *[data[s] for s in step.to], spacing=(1.0, 1.0)
+        )
         data[name] = out.data if isinstance(out, Output) else out
 
 

@@ -59,19 +59,19 @@ import tifffile
 from scipy import ndimage
 
 __all__ = [
+    "HIGH_POROSITY_IMAGE",
     "LOT",
     "N_IMAGES",
-    "SHAPE",
+    "PARAMETERS",
     "PIXEL_SIZE_UM",
     "RESOLUTION_PX_PER_CM",
-    "HIGH_POROSITY_IMAGE",
-    "PARAMETERS",
+    "SHAPE",
     "TRUTH_FILE",
-    "image_name",
-    "render",
     "generate",
-    "truth_json",
+    "image_name",
     "main",
+    "render",
+    "truth_json",
 ]
 
 #: Lot identifier; images are named ``FD-2611-01.tif`` ... ``FD-2611-08.tif``.
@@ -134,7 +134,7 @@ def image_name(index: int) -> str:
 
 def _gaussian_weights(sigma_px: float) -> np.ndarray:
     # Scalar math.exp, so no vectorised transcendental function enters the pixels.
-    radius = int(math.ceil(PARAMETERS["gaussian_truncate_sigmas"] * sigma_px))
+    radius = math.ceil(PARAMETERS["gaussian_truncate_sigmas"] * sigma_px)
     raw = [math.exp(-0.5 * (k / sigma_px) ** 2) for k in range(-radius, radius + 1)]
     total = math.fsum(raw)
     return np.array([w / total for w in raw], dtype=np.float64)

@@ -9,18 +9,18 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 __all__ = [
-    "EXIT_OK",
-    "EXIT_LIMIT_FAILED",
-    "EXIT_INVALID",
     "EXIT_BAD_INPUT",
     "EXIT_INTEGRITY",
     "EXIT_INTERNAL",
     "EXIT_INTERRUPTED",
+    "EXIT_INVALID",
+    "EXIT_LIMIT_FAILED",
     "EXIT_NO_PDF",
+    "EXIT_OK",
+    "InputError",
     "LotproofError",
     "Problem",
     "RecipeError",
-    "InputError",
     "RunFolderError",
 ]
 

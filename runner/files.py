@@ -132,8 +132,9 @@ def read_file(path: Path, max_bytes: int | None = None) -> bytes:
         info = os.fstat(fd)
         if not stat.S_ISREG(info.st_mode):
             what = "a folder" if stat.S_ISDIR(info.st_mode) else "a pipe, device or socket"
-            raise NotARegularFile(21 if stat.S_ISDIR(info.st_mode) else 22,
-                                  f"not a regular file ({what})", str(path))
+            raise NotARegularFile(
+                21 if stat.S_ISDIR(info.st_mode) else 22, f"not a regular file ({what})", str(path)
+            )
         if max_bytes is not None and info.st_size > max_bytes:
             raise OSError(27, f"{info.st_size} bytes, more than {max_bytes}", str(path))
         os.set_blocking(fd, True)

@@ -18,18 +18,18 @@ from lotproof.steps._registry import (
 from lotproof.steps.units import AREA_UNITS, LENGTH_UNITS, Area, Length, resolve_to_px
 
 # Importing the family modules registers their step kinds.
-from lotproof.steps import filters, masks, measure, morphology, threshold  # noqa: E402,F401  isort: skip
-from lotproof.steps import granulometry, segmentation  # noqa: E402,F401  isort: skip
+from lotproof.steps import filters, masks, measure, morphology, threshold  # noqa: F401  isort: skip
+from lotproof.steps import granulometry, segmentation  # noqa: F401  isort: skip
 
 __all__ = [
     "AREA_UNITS",
-    "Area",
     "DATA_KINDS",
     "LENGTH_UNITS",
-    "Length",
-    "Output",
     "REGISTRY",
     "SAME",
+    "Area",
+    "Length",
+    "Output",
     "StepKind",
     "StepParams",
     "Table",

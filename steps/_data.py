@@ -7,7 +7,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["Table", "Output"]
+__all__ = ["Output", "Table"]
 
 
 @dataclass(frozen=True)

@@ -25,52 +25,56 @@ from skimage.measure import marching_cubes, mesh_surface_area
 from lotproof.steps._data import Table
 
 __all__ = [
-    "VOLUME_VALUES",
-    "OBJECT_COLUMNS_3D",
-    "MARCHING_CUBES_LEVEL",
     "EULER_CONNECTIVITIES_3D",
-    "euler_weights_3d",
-    "window_codes_3d",
+    "MARCHING_CUBES_LEVEL",
+    "OBJECT_COLUMNS_3D",
+    "VOLUME_VALUES",
     "euler_characteristic",
+    "euler_weights_3d",
     "object_table_3d",
     "volume_values",
+    "window_codes_3d",
 ]
 
 #: Per-volume values of ``measure`` (3D): name -> unit.
-VOLUME_VALUES: Mapping[str, str] = MappingProxyType({
-    "count": "-",
-    "size_count": "-",
-    "volume_fraction": "-",
-    "number_density_3d": "1/mm3",
-    "surface_density": "1/um",
-    "euler_number": "-",
-    "esd_mean": "um",
-    "esd_volume_mean": "um",
-    "esd_d10": "um",
-    "esd_d50": "um",
-    "esd_d90": "um",
-    "esd_max": "um",
-})
+VOLUME_VALUES: Mapping[str, str] = MappingProxyType(
+    {
+        "count": "-",
+        "size_count": "-",
+        "volume_fraction": "-",
+        "number_density_3d": "1/mm3",
+        "surface_density": "1/um",
+        "euler_number": "-",
+        "esd_mean": "um",
+        "esd_volume_mean": "um",
+        "esd_d10": "um",
+        "esd_d50": "um",
+        "esd_d90": "um",
+        "esd_max": "um",
+    }
+)
 
 #: Per-object columns of ``measure`` (3D), in table order: name -> unit.
-OBJECT_COLUMNS_3D: Mapping[str, str] = MappingProxyType({
-    "label": "-",
-    "volume": "um3",
-    "esd": "um",
-    "surface_area": "um2",
-    "sphericity": "-",
-    "euler_number": "-",
-    "centroid_x": "um",
-    "centroid_y": "um",
-    "centroid_z": "um",
-    "bbox_min_x": "um",
-    "bbox_max_x": "um",
-    "bbox_min_y": "um",
-    "bbox_max_y": "um",
-    "bbox_min_z": "um",
-    "bbox_max_z": "um",
-    "touches_border": "-",
-})
+OBJECT_COLUMNS_3D: Mapping[str, str] = MappingProxyType(
+    {
+        "label": "-",
+        "volume": "um3",
+        "esd": "um",
+        "surface_area": "um2",
+        "sphericity": "-",
+        "euler_number": "-",
+        "centroid_x": "um",
+        "centroid_y": "um",
+        "centroid_z": "um",
+        "bbox_min_x": "um",
+        "bbox_max_x": "um",
+        "bbox_min_y": "um",
+        "bbox_max_y": "um",
+        "bbox_min_z": "um",
+        "bbox_max_z": "um",
+        "touches_border": "-",
+    }
+)
 
 #: The iso-level of the surface on the 0/1 indicator of an object.
 MARCHING_CUBES_LEVEL = 0.5
@@ -102,9 +106,7 @@ def _window_cells() -> tuple[list[list[int]], list[list[int]], list[int]]:
         others = [b for b in range(3) if b != axis]
         for s in (0, 1):
             for t in (0, 1):
-                faces.append(
-                    [bit[v] for v in voxels if v[others[0]] == s and v[others[1]] == t]
-                )
+                faces.append([bit[v] for v in voxels if v[others[0]] == s and v[others[1]] == t])
     return edges, faces, list(range(8))
 
 

@@ -40,15 +40,15 @@ __all__ = [
     "CROFTON_WEIGHTS_2D",
     "EULER4_WEIGHTS_2D",
     "EULER8_WEIGHTS_2D",
-    "label_mask",
-    "compact_labels",
-    "window_histogram_by_label_2d",
-    "window_histogram_2d",
     "boundary_crossings_2d",
-    "pixel_moments_2d",
     "bounding_boxes",
+    "compact_labels",
     "feret_max_2d",
+    "label_mask",
+    "pixel_moments_2d",
     "warm_up",
+    "window_histogram_2d",
+    "window_histogram_by_label_2d",
 ]
 
 
@@ -621,15 +621,47 @@ def _feret(ids, boxes, out):
         if n_rows <= 0 or n_cols <= 0:
             continue
         # a tight box has pixels on its first and last row and column
-        if (row_first[row_base[k + 1]] < 0 or row_first[row_base[k + 1] + n_rows - 1] < 0
-                or col_first[col_base[k + 1]] < 0 or col_first[col_base[k + 1] + n_cols - 1] < 0):
+        if (
+            row_first[row_base[k + 1]] < 0
+            or row_first[row_base[k + 1] + n_rows - 1] < 0
+            or col_first[col_base[k + 1]] < 0
+            or col_first[col_base[k + 1] + n_cols - 1] < 0
+        ):
             return 2
         # the hull image, as column intervals per row and row intervals per column
         # (the same hull, built from the row extents and from the column extents)
-        _hull_lines(row_first, row_last, row_base[k + 1], n_rows,
-                    low, high, ys, xs, ly, lx, ry, rx, c_lo, c_hi)
-        _hull_lines(col_first, col_last, col_base[k + 1], n_cols,
-                    low, high, ys, xs, ly, lx, ry, rx, r_lo, r_hi)
+        _hull_lines(
+            row_first,
+            row_last,
+            row_base[k + 1],
+            n_rows,
+            low,
+            high,
+            ys,
+            xs,
+            ly,
+            lx,
+            ry,
+            rx,
+            c_lo,
+            c_hi,
+        )
+        _hull_lines(
+            col_first,
+            col_last,
+            col_base[k + 1],
+            n_cols,
+            low,
+            high,
+            ys,
+            xs,
+            ly,
+            lx,
+            ry,
+            rx,
+            r_lo,
+            r_hi,
+        )
         # its contour points at level 0.5: interval ends moved out by half a
         # pixel, at rows 2 r (doubled) and at columns 2 c; bounded, level by
         # level along the rows, by their extreme columns
@@ -979,7 +1011,7 @@ def _reference_feret_max_2d(ids: np.ndarray, boxes: np.ndarray) -> np.ndarray:
         keep = _envelope(group, level, value, side)
         y, x = (level, value) if along_rows else (value, level)
         parts.append((group[keep], y[keep], x[keep]))
-    cand_obj, cand_y, cand_x = (np.concatenate(column) for column in zip(*parts))
+    cand_obj, cand_y, cand_x = (np.concatenate(column) for column in zip(*parts, strict=False))
     order = np.argsort(cand_obj, kind="stable")
     starts = _segment_starts(np.bincount(cand_obj, minlength=count + 1)[1:])
     sq = _max_sq_distance_ragged(cand_y[order], cand_x[order], starts)

@@ -38,17 +38,17 @@ import numpy as np
 from scipy import ndimage as ndi
 
 __all__ = [
-    "SUPPORTED_DTYPES",
-    "neutral",
-    "erode",
-    "dilate",
-    "erode_reference",
-    "dilate_reference",
-    "chords",
+    "FUSED_BOX_SIDES",
     "METHODS",
     "STENCIL_MAX_PIXELS",
-    "FUSED_BOX_SIDES",
+    "SUPPORTED_DTYPES",
     "choose_method",
+    "chords",
+    "dilate",
+    "dilate_reference",
+    "erode",
+    "erode_reference",
+    "neutral",
 ]
 
 #: Kernels :func:`erode` and :func:`dilate` can be told to use: ``auto`` picks
@@ -168,7 +168,8 @@ def _reference(image: np.ndarray, offsets: np.ndarray, operation: str) -> np.nda
     op = np.minimum if operation == "erode" else np.maximum
     for offset in offsets:
         window = tuple(
-            slice(int(r + o), int(r + o) + n) for r, o, n in zip(reach, offset, work.shape)
+            slice(int(r + o), int(r + o) + n)
+            for r, o, n in zip(reach, offset, work.shape, strict=False)
         )
         op(out, padded[window], out=out)
     return _restore(out, image.dtype)
@@ -243,8 +244,8 @@ def chords(footprint: np.ndarray) -> list[tuple[tuple[int, ...], int, int]]:
         edges = np.diff(row)
         starts = np.flatnonzero(edges == 1)
         ends = np.flatnonzero(edges == -1)
-        rel = tuple(int(i - c) for i, c in zip(lead, centre[:-1]))
-        for s, e in zip(starts, ends):
+        rel = tuple(int(i - c) for i, c in zip(lead, centre[:-1], strict=False))
+        for s, e in zip(starts, ends, strict=False):
             runs.append((rel, int(s) - centre[-1], int(e - s)))
     return runs
 
@@ -254,7 +255,7 @@ def _accumulate(
 ) -> None:
     """``out[x] = op(out[x], g[x + offset])`` wherever ``x + offset`` lies inside ``g``."""
     dst, src = [], []
-    for o, n_out, n_g in zip(offset, out.shape, g.shape):
+    for o, n_out, n_g in zip(offset, out.shape, g.shape, strict=False):
         lo, hi = max(0, -o), min(n_out, n_g - o)
         if hi <= lo:
             return  # that shift reaches no pixel: outside values are ignored
@@ -401,8 +402,13 @@ def _stencil(
     if box:
         height, width = footprint.shape
         nb.box_stencil_kernel(
-            work, width, height, 0 if operation == "erode" else 1, cval,
-            work.dtype.kind == "f", out,
+            work,
+            width,
+            height,
+            0 if operation == "erode" else 1,
+            cval,
+            work.dtype.kind == "f",
+            out,
         )
         return _restore(out, image.dtype)
     offsets = _offsets(footprint)

@@ -271,7 +271,11 @@ def chord_kernel(
                     _running(mode, lengths[0], table[0, :swp], tmp[:, :swp], seg, 1)
                 for k in range(1, nl):
                     _running(
-                        mode, lengths[k], table[k, :swp], tmp[:, :swp], table[k - 1, :swp],
+                        mode,
+                        lengths[k],
+                        table[k, :swp],
+                        tmp[:, :swp],
+                        table[k - 1, :swp],
                         lengths[k - 1],
                     )
                 for c in range(nc):
@@ -400,7 +404,8 @@ def _frame_pixel(src, rows, cols, m, x, mode, cval, normalize, zero):
 def _passes(mode, src, rows, cols, g, dst, at, n):
     """``dst[j]`` = extremum of ``src[rows[i], cols[i] + at + j]`` over i < g, for j < n."""
     _first8(
-        mode, dst,
+        mode,
+        dst,
         src[rows[0], cols[0] + at : cols[0] + at + n],
         src[rows[1], cols[1] + at : cols[1] + at + n],
         src[rows[2], cols[2] + at : cols[2] + at + n],
@@ -413,7 +418,8 @@ def _passes(mode, src, rows, cols, g, dst, at, n):
     )
     for s in range(8, g, 7):
         _more7(
-            mode, dst,
+            mode,
+            dst,
             src[rows[s], cols[s] + at : cols[s] + at + n],
             src[rows[s + 1], cols[s + 1] + at : cols[s + 1] + at + n],
             src[rows[s + 2], cols[s + 2] + at : cols[s + 2] + at + n],

@@ -34,12 +34,12 @@ from pydantic import BaseModel, ConfigDict
 
 __all__ = [
     "DATA_KINDS",
-    "SAME",
-    "StepParams",
-    "StepKind",
     "REGISTRY",
-    "step",
+    "SAME",
+    "StepKind",
+    "StepParams",
     "get_kind",
+    "step",
 ]
 
 #: The kinds of data that flow between steps.
@@ -124,9 +124,7 @@ def step(
     columns: Mapping[str, tuple[str, str]] | None = None,
 ) -> Callable[[Callable[..., Any]], Callable[..., Any]]:
     """Register ``func`` as the step kind ``name`` (see the module docstring)."""
-    accepted = tuple(
-        frozenset([t]) if isinstance(t, str) else frozenset(t) for t in takes
-    )
+    accepted = tuple(frozenset([t]) if isinstance(t, str) else frozenset(t) for t in takes)
     for kinds in accepted:
         unknown = kinds - set(DATA_KINDS)
         if unknown:

@@ -13,11 +13,11 @@ from lotproof.steps.footprints import ball, disk
 from lotproof.steps.units import Length
 
 __all__ = [
+    "GAUSSIAN_TRUNCATE",
     "GRAY_WEIGHTS",
     "LUMA_WEIGHTS",
     "SMOOTH_METHODS",
     "SMOOTH_MODE",
-    "GAUSSIAN_TRUNCATE",
     "GrayParams",
     "SmoothParams",
     "gray",

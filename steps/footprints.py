@@ -51,21 +51,21 @@ from lotproof.steps._registry import StepParams
 from lotproof.steps.units import Length
 
 __all__ = [
+    "FOOTPRINTS",
     "FOOTPRINTS_2D",
     "FOOTPRINTS_3D",
-    "FOOTPRINTS",
     "FOOTPRINT_NEEDS",
     "MorphologyParams",
-    "nearest_odd",
-    "disk",
-    "diamond",
     "ball",
-    "square",
-    "rectangle",
-    "cube",
-    "line",
-    "ellipsoid",
     "build_footprint",
+    "cube",
+    "diamond",
+    "disk",
+    "ellipsoid",
+    "line",
+    "nearest_odd",
+    "rectangle",
+    "square",
 ]
 
 #: Footprints for 2-D images.
@@ -196,7 +196,7 @@ def _clip(halves: Sequence[int], limit: Sequence[int] | None) -> list[int]:
         return list(halves)
     if len(limit) != len(halves):
         raise ValueError(f"limit has {len(limit)} axes, the footprint {len(halves)}")
-    return [min(h, int(lim)) for h, lim in zip(halves, limit)]
+    return [min(h, int(lim)) for h, lim in zip(halves, limit, strict=False)]
 
 
 def _grid(halves: Sequence[int]) -> list[np.ndarray]:
@@ -289,7 +289,7 @@ def ellipsoid(radii: Sequence[float], *, limit: Sequence[int] | None = None) -> 
     halves = [math.floor(r) for r in radii]
     grids = _grid(_clip(halves, limit))
     total = np.zeros(np.broadcast_shapes(*(g.shape for g in grids)), dtype=np.float64)
-    for g, r in zip(grids, radii):
+    for g, r in zip(grids, radii, strict=False):
         total = total + (g.astype(np.float64) / r) ** 2
     inside = total <= 1.0
     close = np.abs(total - 1.0) <= 1e-9
@@ -297,8 +297,8 @@ def ellipsoid(radii: Sequence[float], *, limit: Sequence[int] | None = None) -> 
         exact_radii = [Fraction(r) for r in radii]
         offsets = np.argwhere(close)
         for index in offsets:
-            point = [int(i) - int(g.size // 2) for i, g in zip(index, grids)]
-            value = sum(Fraction(p * p) / (r * r) for p, r in zip(point, exact_radii))
+            point = [int(i) - int(g.size // 2) for i, g in zip(index, grids, strict=False)]
+            value = sum(Fraction(p * p) / (r * r) for p, r in zip(point, exact_radii, strict=False))
             inside[tuple(index)] = value <= 1
     return inside
 

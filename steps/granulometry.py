@@ -23,13 +23,13 @@ from lotproof.steps.footprints import diamond, disk, square
 from lotproof.steps.units import Length
 
 __all__ = [
-    "SPECTRUM_FOOTPRINTS",
-    "SPECTRUM_COLUMNS",
-    "SPECTRUM_VALUES",
     "MAX_RADII",
+    "SPECTRUM_COLUMNS",
+    "SPECTRUM_FOOTPRINTS",
+    "SPECTRUM_VALUES",
     "SizeSpectrumParams",
-    "spectrum_radii",
     "size_spectrum",
+    "spectrum_radii",
 ]
 
 #: Footprints ``size-spectrum`` opens with; each is a ball of radius r in its own
@@ -228,7 +228,9 @@ def size_spectrum(
     if not all(math.isfinite(s) and s > 0 for s in (dy, dx)):
         raise ValueError(f"pixel size must be finite and > 0 um (got {spacing!r})")
     if not math.isclose(dy, dx, rel_tol=1e-9, abs_tol=0.0):
-        raise ValueError(f"size-spectrum supports square pixels only (got dy = {dy} um, dx = {dx} um)")
+        raise ValueError(
+            f"size-spectrum supports square pixels only (got dy = {dy} um, dx = {dx} um)"
+        )
 
     radii = spectrum_radii(params.max_radius.px, params.step.px)
     limit = [n - 1 for n in mask.shape]

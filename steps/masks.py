@@ -27,20 +27,21 @@ from lotproof.steps.units import Area, Volume
 
 __all__ = [
     "COMBINE_METHODS",
-    "InvertParams",
-    "FillHolesParams",
-    "RemoveSmallParams",
     "ClearBorderParams",
     "CombineParams",
-    "invert",
-    "fill_holes",
-    "remove_small",
+    "FillHolesParams",
+    "InvertParams",
+    "RemoveSmallParams",
     "clear_border",
     "combine",
+    "fill_holes",
+    "invert",
+    "remove_small",
 ]
 
 #: Ways ``combine`` joins masks.
 COMBINE_METHODS: tuple[str, ...] = ("and", "or", "xor", "minus")
+
 
 def _check_mask(mask: np.ndarray, what: str) -> None:
     if mask.dtype != np.bool_:

@@ -38,18 +38,18 @@ from lotproof.steps.connectivity import Connectivity, resolve_connectivity
 
 __all__ = [
     "BORDER_RULES",
+    "COLUMN_DEFINITIONS",
+    "COLUMN_DEFINITIONS_3D",
     "IMAGE_VALUES",
-    "VOLUME_VALUES",
     "MEASURE_VALUES",
     "OBJECT_COLUMNS",
     "OBJECT_COLUMNS_3D",
+    "PHASE_FRACTION_VALUES",
     "VALUE_DEFINITIONS",
-    "COLUMN_DEFINITIONS",
-    "COLUMN_DEFINITIONS_3D",
+    "VOLUME_VALUES",
     "LabelParams",
     "MeasureParams",
     "PhaseFractionParams",
-    "PHASE_FRACTION_VALUES",
     "label",
     "measure",
     "phase_fraction",
@@ -60,40 +60,44 @@ __all__ = [
 BORDER_RULES: tuple[str, ...] = ("include", "exclude")
 
 #: Per-image values of ``measure`` (2D): name -> unit.
-IMAGE_VALUES: Mapping[str, str] = MappingProxyType({
-    "count": "-",
-    "size_count": "-",
-    "area_fraction": "-",
-    "number_density": "1/mm2",
-    "contour_length": "um",
-    "euler_number": "-",
-    "ecd_mean": "um",
-    "ecd_area_mean": "um",
-    "ecd_d10": "um",
-    "ecd_d50": "um",
-    "ecd_d90": "um",
-    "ecd_max": "um",
-    "n_l_x": "1/mm",
-    "n_l_y": "1/mm",
-    "mean_intercept": "um",
-    "mean_free_path": "um",
-})
+IMAGE_VALUES: Mapping[str, str] = MappingProxyType(
+    {
+        "count": "-",
+        "size_count": "-",
+        "area_fraction": "-",
+        "number_density": "1/mm2",
+        "contour_length": "um",
+        "euler_number": "-",
+        "ecd_mean": "um",
+        "ecd_area_mean": "um",
+        "ecd_d10": "um",
+        "ecd_d50": "um",
+        "ecd_d90": "um",
+        "ecd_max": "um",
+        "n_l_x": "1/mm",
+        "n_l_y": "1/mm",
+        "mean_intercept": "um",
+        "mean_free_path": "um",
+    }
+)
 
 #: Per-object columns of ``measure`` (2D), in table order: name -> unit.
-OBJECT_COLUMNS: Mapping[str, str] = MappingProxyType({
-    "label": "-",
-    "area": "um2",
-    "ecd": "um",
-    "perimeter": "um",
-    "feret_max": "um",
-    "major_axis": "um",
-    "minor_axis": "um",
-    "circularity": "-",
-    "euler_number": "-",
-    "centroid_x": "um",
-    "centroid_y": "um",
-    "touches_border": "-",
-})
+OBJECT_COLUMNS: Mapping[str, str] = MappingProxyType(
+    {
+        "label": "-",
+        "area": "um2",
+        "ecd": "um",
+        "perimeter": "um",
+        "feret_max": "um",
+        "major_axis": "um",
+        "minor_axis": "um",
+        "circularity": "-",
+        "euler_number": "-",
+        "centroid_x": "um",
+        "centroid_y": "um",
+        "touches_border": "-",
+    }
+)
 
 #: Every value ``measure`` may report (2D and 3D): name -> unit; limits are checked
 #: against these names. A name shared by 2D and 3D has the same unit in both.
@@ -102,80 +106,87 @@ MEASURE_VALUES: Mapping[str, str] = MappingProxyType({**IMAGE_VALUES, **VOLUME_V
 _BORDER_NOTE = "objects counted as the border rule says (measure's border parameter)"
 
 #: One-line definition of every per-image (2D) and per-volume (3D) value.
-VALUE_DEFINITIONS: Mapping[str, str] = MappingProxyType({
-    "count": "number of objects N, every object including those cut by the frame",
-    "size_count": "number of objects in the size statistics (ecd_* / esd_*): N with "
-    "border: include, the objects not touching the frame with border: exclude",
-    "area_fraction": "A_A, foreground pixels / all pixels; estimates the volume fraction "
-    "V_V (Delesse); every foreground pixel counts, whatever the border rule",
-    "number_density": "N_A, objects per mm2 of field, N / (H W dy dx)",
-    "contour_length": "sum of the objects' Crofton perimeters (4 directions)",
-    "euler_number": "objects minus holes (2D) or objects - tunnels + cavities (3D) of the "
-    "whole foreground, with the step's connectivity",
-    "ecd_mean": "number-weighted arithmetic mean ECD, ISO 9276-2 x_bar_1,0 = M_1,0 = "
-    "sum(ecd) / n; " + _BORDER_NOTE,
-    "ecd_area_mean": "area-weighted arithmetic mean ECD, ISO 9276-2 x_bar_1,2 = M_1,2 = "
-    "M_3,0 / M_2,0 = sum(A ecd) / sum(A) (D[3,2]); " + _BORDER_NOTE,
-    "ecd_d10": "10th number-weighted percentile of ECD, linear interpolation between "
-    "order statistics (Hyndman-Fan type 7); " + _BORDER_NOTE,
-    "ecd_d50": "median ECD (number-weighted, type 7); " + _BORDER_NOTE,
-    "ecd_d90": "90th number-weighted percentile of ECD (type 7); " + _BORDER_NOTE,
-    "ecd_max": "largest ECD; " + _BORDER_NOTE,
-    "n_l_x": "N_L along x: features crossed per mm of horizontal test line (every row)",
-    "n_l_y": "N_L along y: features crossed per mm of vertical test line (every column)",
-    "mean_intercept": "mean intercept length L_3 = A_A / N_L, N_L = (n_l_x + n_l_y) / 2",
-    "mean_free_path": "mean free path lambda = (1 - A_A) / N_L (Underwood)",
-    "volume_fraction": "V_V, foreground voxels / all voxels",
-    "number_density_3d": "N_V, objects per mm3 of field, N / (Z Y X dz dy dx)",
-    "surface_density": "S_V, area of the level-0.5 marching-cubes surface of the whole "
-    "foreground inside the field (the frame adds none) per um3 of field",
-    "esd_mean": "number-weighted arithmetic mean ESD, ISO 9276-2 x_bar_1,0 = sum(esd) / n; "
-    + _BORDER_NOTE,
-    "esd_volume_mean": "volume-weighted arithmetic mean ESD, ISO 9276-2 x_bar_1,3 = M_1,3 = "
-    "M_4,0 / M_3,0 = sum(V esd) / sum(V) (D[4,3]); " + _BORDER_NOTE,
-    "esd_d10": "10th number-weighted percentile of ESD (type 7); " + _BORDER_NOTE,
-    "esd_d50": "median ESD (number-weighted, type 7); " + _BORDER_NOTE,
-    "esd_d90": "90th number-weighted percentile of ESD (type 7); " + _BORDER_NOTE,
-    "esd_max": "largest ESD; " + _BORDER_NOTE,
-})
+VALUE_DEFINITIONS: Mapping[str, str] = MappingProxyType(
+    {
+        "count": "number of objects N, every object including those cut by the frame",
+        "size_count": "number of objects in the size statistics (ecd_* / esd_*): N with "
+        "border: include, the objects not touching the frame with border: exclude",
+        "area_fraction": "A_A, foreground pixels / all pixels; estimates the volume fraction "
+        "V_V (Delesse); every foreground pixel counts, whatever the border rule",
+        "number_density": "N_A, objects per mm2 of field, N / (H W dy dx)",
+        "contour_length": "sum of the objects' Crofton perimeters (4 directions)",
+        "euler_number": "objects minus holes (2D) or objects - tunnels + cavities (3D) of the "
+        "whole foreground, with the step's connectivity",
+        "ecd_mean": "number-weighted arithmetic mean ECD, ISO 9276-2 x_bar_1,0 = M_1,0 = "
+        "sum(ecd) / n; " + _BORDER_NOTE,
+        "ecd_area_mean": "area-weighted arithmetic mean ECD, ISO 9276-2 x_bar_1,2 = M_1,2 = "
+        "M_3,0 / M_2,0 = sum(A ecd) / sum(A) (D[3,2]); " + _BORDER_NOTE,
+        "ecd_d10": "10th number-weighted percentile of ECD, linear interpolation between "
+        "order statistics (Hyndman-Fan type 7); " + _BORDER_NOTE,
+        "ecd_d50": "median ECD (number-weighted, type 7); " + _BORDER_NOTE,
+        "ecd_d90": "90th number-weighted percentile of ECD (type 7); " + _BORDER_NOTE,
+        "ecd_max": "largest ECD; " + _BORDER_NOTE,
+        "n_l_x": "N_L along x: features crossed per mm of horizontal test line (every row)",
+        "n_l_y": "N_L along y: features crossed per mm of vertical test line (every column)",
+        "mean_intercept": "mean intercept length L_3 = A_A / N_L, N_L = (n_l_x + n_l_y) / 2",
+        "mean_free_path": "mean free path lambda = (1 - A_A) / N_L (Underwood)",
+        "volume_fraction": "V_V, foreground voxels / all voxels",
+        "number_density_3d": "N_V, objects per mm3 of field, N / (Z Y X dz dy dx)",
+        "surface_density": "S_V, area of the level-0.5 marching-cubes surface of the whole "
+        "foreground inside the field (the frame adds none) per um3 of field",
+        "esd_mean": "number-weighted arithmetic mean ESD, ISO 9276-2 x_bar_1,0 = sum(esd) / n; "
+        + _BORDER_NOTE,
+        "esd_volume_mean": "volume-weighted arithmetic mean ESD, ISO 9276-2 x_bar_1,3 = M_1,3 = "
+        "M_4,0 / M_3,0 = sum(V esd) / sum(V) (D[4,3]); " + _BORDER_NOTE,
+        "esd_d10": "10th number-weighted percentile of ESD (type 7); " + _BORDER_NOTE,
+        "esd_d50": "median ESD (number-weighted, type 7); " + _BORDER_NOTE,
+        "esd_d90": "90th number-weighted percentile of ESD (type 7); " + _BORDER_NOTE,
+        "esd_max": "largest ESD; " + _BORDER_NOTE,
+    }
+)
 
 #: One-line definition of every per-object column (2D).
-COLUMN_DEFINITIONS: Mapping[str, str] = MappingProxyType({
-    "label": "the object's label",
-    "area": "A = pixel count x dy dx",
-    "ecd": "equivalent circle diameter sqrt(4 A / pi)",
-    "perimeter": "Crofton perimeter, 4 directions (about 36.8 px for a 10 x 10 px square)",
-    "feret_max": "largest caliper diameter of the convex hull of the pixel edge midpoints",
-    "major_axis": "4 sqrt(larger eigenvalue of the pixel-centre covariance)",
-    "minor_axis": "4 sqrt(smaller eigenvalue of the pixel-centre covariance)",
-    "circularity": "4 pi A / P^2 with the Crofton perimeter P",
-    "euler_number": "objects minus holes of the object alone, with the connectivity",
-    "centroid_x": "mean x of the pixel centres (first pixel centre at 0)",
-    "centroid_y": "mean y of the pixel centres (first pixel centre at 0)",
-    "touches_border": "1 if a pixel of the object lies on the image frame, else 0",
-})
+COLUMN_DEFINITIONS: Mapping[str, str] = MappingProxyType(
+    {
+        "label": "the object's label",
+        "area": "A = pixel count x dy dx",
+        "ecd": "equivalent circle diameter sqrt(4 A / pi)",
+        "perimeter": "Crofton perimeter, 4 directions (about 36.8 px for a 10 x 10 px square)",
+        "feret_max": "largest caliper diameter of the convex hull of the pixel edge midpoints",
+        "major_axis": "4 sqrt(larger eigenvalue of the pixel-centre covariance)",
+        "minor_axis": "4 sqrt(smaller eigenvalue of the pixel-centre covariance)",
+        "circularity": "4 pi A / P^2 with the Crofton perimeter P",
+        "euler_number": "objects minus holes of the object alone, with the connectivity",
+        "centroid_x": "mean x of the pixel centres (first pixel centre at 0)",
+        "centroid_y": "mean y of the pixel centres (first pixel centre at 0)",
+        "touches_border": "1 if a pixel of the object lies on the image frame, else 0",
+    }
+)
 
 #: One-line definition of every per-object column (3D).
-COLUMN_DEFINITIONS_3D: Mapping[str, str] = MappingProxyType({
-    "label": "the object's label",
-    "volume": "V = voxel count x dz dy dx",
-    "esd": "equivalent sphere diameter (6 V / pi)^(1/3)",
-    "surface_area": "area of the level-0.5 marching-cubes surface of the object alone, "
-    "padded by one voxel of background (a cut face at the frame counts)",
-    "sphericity": "pi^(1/3) (6 V)^(2/3) / surface_area (Wadell; 1 for a sphere)",
-    "euler_number": "objects - tunnels + cavities of the object alone (1 ball, 0 torus, "
-    "2 hollow ball), with the connectivity",
-    "centroid_x": "mean x of the voxel centres (first voxel centre at 0)",
-    "centroid_y": "mean y of the voxel centres",
-    "centroid_z": "mean z of the voxel centres",
-    "bbox_min_x": "lower x edge of the bounding box (first voxel spans -dx/2 .. dx/2)",
-    "bbox_max_x": "upper x edge of the bounding box",
-    "bbox_min_y": "lower y edge of the bounding box",
-    "bbox_max_y": "upper y edge of the bounding box",
-    "bbox_min_z": "lower z edge of the bounding box",
-    "bbox_max_z": "upper z edge of the bounding box",
-    "touches_border": "1 if a voxel of the object lies on the volume's frame, else 0",
-})
+COLUMN_DEFINITIONS_3D: Mapping[str, str] = MappingProxyType(
+    {
+        "label": "the object's label",
+        "volume": "V = voxel count x dz dy dx",
+        "esd": "equivalent sphere diameter (6 V / pi)^(1/3)",
+        "surface_area": "area of the level-0.5 marching-cubes surface of the object alone, "
+        "padded by one voxel of background (a cut face at the frame counts)",
+        "sphericity": "pi^(1/3) (6 V)^(2/3) / surface_area (Wadell; 1 for a sphere)",
+        "euler_number": "objects - tunnels + cavities of the object alone (1 ball, 0 torus, "
+        "2 hollow ball), with the connectivity",
+        "centroid_x": "mean x of the voxel centres (first voxel centre at 0)",
+        "centroid_y": "mean y of the voxel centres",
+        "centroid_z": "mean z of the voxel centres",
+        "bbox_min_x": "lower x edge of the bounding box (first voxel spans -dx/2 .. dx/2)",
+        "bbox_max_x": "upper x edge of the bounding box",
+        "bbox_min_y": "lower y edge of the bounding box",
+        "bbox_max_y": "upper y edge of the bounding box",
+        "bbox_min_z": "lower z edge of the bounding box",
+        "bbox_max_z": "upper z edge of the bounding box",
+        "touches_border": "1 if a voxel of the object lies on the volume's frame, else 0",
+    }
+)
+
 
 class LabelParams(StepParams):
     """Parameters of ``label``."""
@@ -260,9 +271,7 @@ def _check_spacing_2d(spacing: tuple[float, ...]) -> float:
     if not all(math.isfinite(s) and s > 0 for s in (dy, dx)):
         raise ValueError(f"pixel size must be finite and > 0 um (got {spacing!r})")
     if not math.isclose(dy, dx, rel_tol=1e-9, abs_tol=0.0):
-        raise ValueError(
-            f"measure supports square pixels only (got dy = {dy} um, dx = {dx} um)"
-        )
+        raise ValueError(f"measure supports square pixels only (got dy = {dy} um, dx = {dx} um)")
     return dx
 
 
@@ -520,10 +529,7 @@ def _object_table(
     lam2 = np.clip(half_sum - radius, 0.0, None)  # rounding can make it slightly negative
     boxes = _k.bounding_boxes(ids, count)
     touches = (
-        (boxes[:, 0] == 0)
-        | (boxes[:, 1] == 0)
-        | (boxes[:, 2] == height)
-        | (boxes[:, 3] == width)
+        (boxes[:, 0] == 0) | (boxes[:, 1] == 0) | (boxes[:, 2] == height) | (boxes[:, 3] == width)
     )
     columns = {
         "label": present.astype(np.int32),
@@ -598,10 +604,12 @@ def _image_values(
 
 
 #: Values of ``phase-fraction``: name -> unit.
-PHASE_FRACTION_VALUES: Mapping[str, str] = MappingProxyType({
-    "fraction": "-",
-    "reference_fraction": "-",
-})
+PHASE_FRACTION_VALUES: Mapping[str, str] = MappingProxyType(
+    {
+        "fraction": "-",
+        "reference_fraction": "-",
+    }
+)
 
 
 class PhaseFractionParams(StepParams):

@@ -26,17 +26,17 @@ from lotproof.steps._registry import step
 from lotproof.steps.footprints import MorphologyParams, build_footprint
 
 __all__ = [
-    "MorphologyParams",
-    "OUTLINE_MODES",
-    "OutlineParams",
     "FEATURES",
+    "OUTLINE_MODES",
     "BackgroundParams",
-    "erode",
-    "widen",
-    "open_",
+    "MorphologyParams",
+    "OutlineParams",
     "close",
+    "erode",
+    "open_",
     "outline",
     "subtract_background",
+    "widen",
 ]
 
 #: ``outline`` modes: full = widen - erode, inner = image - erode, outer = widen - image.
@@ -116,9 +116,7 @@ def _close(data: np.ndarray, footprint: np.ndarray) -> np.ndarray:
     ndims=(2, 3),
     libraries=_LIBRARIES,
 )
-def erode(
-    params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, ...]
-) -> np.ndarray:
+def erode(params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, ...]) -> np.ndarray:
     """Erosion: the minimum over the footprint (shrinks bright regions and masks).
 
     Each output pixel is the smallest input value under the footprint centred
@@ -162,9 +160,7 @@ def erode(
     ndims=(2, 3),
     libraries=_LIBRARIES,
 )
-def widen(
-    params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, ...]
-) -> np.ndarray:
+def widen(params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, ...]) -> np.ndarray:
     """Dilation: the maximum over the footprint (grows bright regions and masks).
 
     Each output pixel is the largest input value under the footprint centred
@@ -208,9 +204,7 @@ def widen(
     ndims=(2, 3),
     libraries=_LIBRARIES,
 )
-def open_(
-    params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, ...]
-) -> np.ndarray:
+def open_(params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, ...]) -> np.ndarray:
     """Opening: erode, then widen by the same footprint (removes bright specks smaller than it).
 
     Bright details (or mask parts) into which the footprint does not fit are
@@ -253,9 +247,7 @@ def open_(
     ndims=(2, 3),
     libraries=_LIBRARIES,
 )
-def close(
-    params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, ...]
-) -> np.ndarray:
+def close(params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, ...]) -> np.ndarray:
     """Closing: widen, then erode by the same footprint (fills dark gaps smaller than it).
 
     Dark details (or holes and gaps of a mask) into which the footprint does
@@ -297,9 +289,7 @@ def close(
     ndims=(2, 3),
     libraries=_LIBRARIES,
 )
-def outline(
-    params: OutlineParams, data: np.ndarray, *, spacing: tuple[float, ...]
-) -> np.ndarray:
+def outline(params: OutlineParams, data: np.ndarray, *, spacing: tuple[float, ...]) -> np.ndarray:
     """Morphological gradient: widen - erode, or one half of it (``mode``).
 
     Gray images: ``full`` = widen - erode, ``inner`` = image - erode,

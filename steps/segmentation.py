@@ -26,10 +26,11 @@ from lotproof.steps.units import Length
 
 __all__ = [
     "SplitParams",
-    "split_touching",
     "distance_markers",
     "raster_relabel",
+    "split_touching",
 ]
+
 
 class SplitParams(StepParams):
     """Parameters of ``split-touching``."""
@@ -333,7 +334,11 @@ def split_touching(
     relief = reconstruction(distance - depth_um, distance, method="dilation", footprint=full)
     markers = distance_markers(distance, relief, regions, separation_um, sizes)
     flooded = watershed(
-        -distance, markers, connectivity=neighbours, mask=mask, compactness=0.0,
+        -distance,
+        markers,
+        connectivity=neighbours,
+        mask=mask,
+        compactness=0.0,
         watershed_line=False,
     )
     return raster_relabel(flooded)

@@ -36,10 +36,10 @@ from lotproof.steps.footprints import nearest_odd
 from lotproof.steps.units import Length
 
 __all__ = [
-    "THRESHOLD_METHODS",
-    "THRESHOLD_FEATURES",
     "FLOAT_NBINS",
     "MAX_INTEGER_BINS",
+    "THRESHOLD_FEATURES",
+    "THRESHOLD_METHODS",
     "ThresholdParams",
     "threshold",
 ]
@@ -141,7 +141,9 @@ def _integer_histogram(image: np.ndarray, lo: int, hi: int) -> tuple[np.ndarray,
     return counts, values
 
 
-def _histogram(image: np.ndarray, low: np.number, high: np.number) -> tuple[np.ndarray, np.ndarray, float]:
+def _histogram(
+    image: np.ndarray, low: np.number, high: np.number
+) -> tuple[np.ndarray, np.ndarray, float]:
     """Counts (int64), bin values (float64) and bin width of a non-constant image.
 
     ``low`` and ``high`` are the image's minimum and maximum. The first and the
@@ -267,8 +269,10 @@ def _local_mean(image: np.ndarray, side: int) -> np.ndarray:
 def _compare(image: np.ndarray, level: float | np.ndarray, features: str) -> np.ndarray:
     # Compare in float64: a float32 image against a Python float would compare
     # in float32 and round the level.
-    data = image if image.dtype.kind in "ui" and image.dtype.itemsize <= 4 else image.astype(
-        np.float64, copy=False
+    data = (
+        image
+        if image.dtype.kind in "ui" and image.dtype.itemsize <= 4
+        else image.astype(np.float64, copy=False)
     )
     bright = np.greater(data, np.float64(level) if np.isscalar(level) else level)
     return bright if features == "bright" else ~bright

@@ -44,20 +44,20 @@ from pydantic.json_schema import JsonSchemaValue
 from pydantic_core import PydanticCustomError, core_schema
 
 __all__ = [
-    "LENGTH_UNITS",
     "AREA_UNITS",
-    "Length",
-    "VOLUME_UNITS",
     "FILE_LENGTH_UNITS",
+    "LENGTH_UNITS",
+    "VOLUME_UNITS",
+    "Area",
+    "Length",
+    "Volume",
+    "parse_area",
+    "parse_length",
+    "parse_volume",
+    "resolve_for_spacing",
+    "resolve_to_px",
     "unit_factor",
     "unit_spellings",
-    "Area",
-    "Volume",
-    "parse_length",
-    "parse_area",
-    "parse_volume",
-    "resolve_to_px",
-    "resolve_for_spacing",
 ]
 
 #: Length unit spellings -> (canonical name, micrometres per unit); ``px`` has no
@@ -143,8 +143,11 @@ def unit_spellings(unit: str) -> list[str]:
         return [unit]
     table, reciprocal, base = found
     physical = table[base][1] is not None
-    names = [n for n, (canon, um) in table.items() if (um is not None) == physical
-             and (physical or canon == table[base][0])]
+    names = [
+        n
+        for n, (canon, um) in table.items()
+        if (um is not None) == physical and (physical or canon == table[base][0])
+    ]
     return [f"1/{n}" for n in names] + [f"/{n}" for n in names] if reciprocal else names
 
 
@@ -232,7 +235,7 @@ class Length(_Quantity):
     def __str__(self) -> str:
         if self.axes is None:
             return f"{_format_number(self.value)} {self.unit}"
-        names = ("z", "y", "x")[-len(self.axes):]
+        names = ("z", "y", "x")[-len(self.axes) :]
         sizes = ", ".join(_format_number(a) for a in self.axes)
         return f"[{sizes}] {self.unit} ({', '.join(names)})"
 
@@ -258,9 +261,7 @@ class Length(_Quantity):
         if self.axes is None:
             return (self.value,) * ndim
         if len(self.axes) != ndim:
-            raise ValueError(
-                f"{self} was resolved for {len(self.axes)}-D data, not {ndim}-D"
-            )
+            raise ValueError(f"{self} was resolved for {len(self.axes)}-D data, not {ndim}-D")
         return self.axes
 
     @classmethod
@@ -308,7 +309,8 @@ def _parse(raw: Any, table: dict[str, tuple[str, float | None]], cls: type, hint
     kind = cls.__name__.lower()
     if isinstance(raw, bool) or raw is None:
         raise PydanticCustomError(
-            "quantity_type", "a {kind} with its unit is needed (got {got}); write {hint}",
+            "quantity_type",
+            "a {kind} with its unit is needed (got {got}); write {hint}",
             {"kind": kind, "got": repr(raw), "hint": hint},
         )
     if isinstance(raw, (int, float)):
@@ -319,21 +321,26 @@ def _parse(raw: Any, table: dict[str, tuple[str, float | None]], cls: type, hint
         )
     if not isinstance(raw, str):
         raise PydanticCustomError(
-            "quantity_type", "a {kind} with its unit is needed (got {got}); write {hint}",
+            "quantity_type",
+            "a {kind} with its unit is needed (got {got}); write {hint}",
             {"kind": kind, "got": type(raw).__name__, "hint": hint},
         )
     match = _QUANTITY.match(raw)
     if not match:
         raise PydanticCustomError(
-            "quantity_syntax", "cannot read {got} as a {kind}; write {hint}",
+            "quantity_syntax",
+            "cannot read {got} as a {kind}; write {hint}",
             {"kind": kind, "got": repr(raw), "hint": hint},
         )
     number, unit = match.groups()
     if unit not in table:
         others = [
             (other, name)
-            for other, name in ((LENGTH_UNITS, "a length"), (AREA_UNITS, "an area"),
-                                (VOLUME_UNITS, "a volume"))
+            for other, name in (
+                (LENGTH_UNITS, "a length"),
+                (AREA_UNITS, "an area"),
+                (VOLUME_UNITS, "a volume"),
+            )
             if other is not table
         ]
         for other, other_kind in others:
@@ -375,9 +382,7 @@ def parse_volume(raw: Any) -> Volume:
     return _parse(raw, VOLUME_UNITS, Volume, "27 px3 or 500 um3")
 
 
-def resolve_to_px(
-    quantity: Length | Area | Volume, pixel_size_um: float
-) -> Length | Area | Volume:
+def resolve_to_px(quantity: Length | Area | Volume, pixel_size_um: float) -> Length | Area | Volume:
     """Convert a length, area or volume to pixels for square pixels of ``pixel_size_um``.
 
     A length in ``um`` becomes ``value / pixel_size_um`` pixels, an area in ``um2``

@@ -26,63 +26,107 @@ import pytest
 TESTS = Path(__file__).resolve().parent
 ROOT = TESTS.parent
 BAD = TESTS / "bad_inputs"
-FILES = ("test_bad_recipes.py", "test_bad_images.py", "test_fuzz_recipes.py", "test_faults.py",
-         "test_security.py")
+FILES = (
+    "test_bad_recipes.py",
+    "test_bad_images.py",
+    "test_fuzz_recipes.py",
+    "test_faults.py",
+    "test_security.py",
+)
 
 #: (row, outcome, test functions); rows appear in this order
 FAULT_ROWS = [
-    ("faults: process killed (SIGKILL)",
-     "only whole cache entries and run files are left (temporary files are never read); the run "
-     "folder verifies `unfinished` (exit 4), or `intact` when killed after its last ledger line; "
-     "the next run completes, reuses every cached result and gives the same files",
-     ("test_a_run_killed_at_an_io_point", "test_a_run_with_workers_killed_from_outside")),
-    ("faults: damaged cache entries",
-     "flipped bit, truncated, another entry's bytes, empty: each reported (`cache entry PATH: ...; "
-     "recomputing`), recomputed and stored whole again; the run is identical and `intact`",
-     ("test_damaged_cache_entries_are_found_and_recomputed",)),
-    ("faults: full disk (ENOSPC) under the run folder",
-     "`error: PATH: cannot write ... (No space left on device)`, exit 3, no seal printed, the run "
-     "folder verifies `unfinished`, never `intact`",
-     ("test_a_full_disk_under_the_run_folder_is_a_clear_error",)),
-    ("faults: full disk (ENOSPC) under the cache",
-     "one note (`cannot store results`); the results are computed and recorded, the run is whole "
-     "and `intact`",
-     ("test_a_full_disk_under_the_cache_is_a_note_and_the_run_is_whole",)),
-    ("faults: two runs at once, one cache and one output folder",
-     "both complete with the same results in distinct run folders, both `intact`",
-     ("test_two_runs_at_once_on_one_cache_and_one_output_folder",)),
+    (
+        "faults: process killed (SIGKILL)",
+        "only whole cache entries and run files are left (temporary files are never read); the run "
+        "folder verifies `unfinished` (exit 4), or `intact` when killed after its last ledger line; "
+        "the next run completes, reuses every cached result and gives the same files",
+        ("test_a_run_killed_at_an_io_point", "test_a_run_with_workers_killed_from_outside"),
+    ),
+    (
+        "faults: damaged cache entries",
+        "flipped bit, truncated, another entry's bytes, empty: each reported (`cache entry PATH: ...; "
+        "recomputing`), recomputed and stored whole again; the run is identical and `intact`",
+        ("test_damaged_cache_entries_are_found_and_recomputed",),
+    ),
+    (
+        "faults: full disk (ENOSPC) under the run folder",
+        "`error: PATH: cannot write ... (No space left on device)`, exit 3, no seal printed, the run "
+        "folder verifies `unfinished`, never `intact`",
+        ("test_a_full_disk_under_the_run_folder_is_a_clear_error",),
+    ),
+    (
+        "faults: full disk (ENOSPC) under the cache",
+        "one note (`cannot store results`); the results are computed and recorded, the run is whole "
+        "and `intact`",
+        ("test_a_full_disk_under_the_cache_is_a_note_and_the_run_is_whole",),
+    ),
+    (
+        "faults: two runs at once, one cache and one output folder",
+        "both complete with the same results in distinct run folders, both `intact`",
+        ("test_two_runs_at_once_on_one_cache_and_one_output_folder",),
+    ),
 ]
 SECURITY_ROWS = [
-    ("security: YAML object tags",
-     "`!!python/...` tags refused at their position (exit 2), never constructed; the loader is a "
-     "`SafeLoader` without Python constructors",
-     ("test_python_tags_are_refused_and_never_constructed",
-      "test_the_recipe_loader_is_a_safe_loader_without_python_constructors")),
-    ("security: nothing evaluated",
-     "expressions in limits, bounds, options and lengths are errors (exit 2), never run; no "
-     "`eval`/`exec`/`compile`/`__import__`, pickle, unsafe YAML load or `shell=` in lotproof's code",
-     ("test_no_code_of_lotproof_evaluates_text_or_unpickles", "test_nothing_in_a_recipe_is_evaluated")),
-    ("security: the lot's boundary",
-     "globs with `..` or absolute paths are recipe errors (exit 2); wildcards never match `..`; a "
-     "symbolic link out of the lot makes that image `incomplete` (exit 3), its bytes unread",
-     ("test_globs_that_leave_the_lot_are_recipe_errors", "test_globs_that_look_outward_find_nothing_outside",
-      "test_symbolic_links_out_of_the_lot_are_refused_per_image")),
-    ("security: names",
-     "run folders are one sanitised name directly under `--out`; image names become safe file "
-     "names inside the run folder",
-     ("test_run_folder_names_are_sanitised", "test_lot_files_with_odd_names_stay_inside_the_run_folder")),
-    ("security: the lot is read-only to lotproof",
-     "names, modes, times and bytes of the lot unchanged by runs; every open of a lot file is "
-     "`O_RDONLY` (audit hook); `--out` or `--cache` inside the lot is refused (exit 2)",
-     ("test_a_run_leaves_the_lot_exactly_as_it_was", "test_output_or_cache_inside_the_lot_is_refused",
-      "test_lot_files_are_opened_read_only_and_never_changed")),
-    ("security: bounded loads",
-     "recipes over 1,000,000 bytes, inputs over 2 GiB (checked before reading) and cache headers "
-     "over 16 MiB are refused; declared array sizes are checked before allocation",
-     ("test_a_recipe_over_the_size_bound_is_refused_before_parsing", "test_a_recipe_that_is_a_pipe_is_bounded",
-      "test_an_input_over_the_size_bound_is_refused_before_it_is_read",
-      "test_a_sparse_input_of_more_than_2_GiB_is_refused_without_reading_it",
-      "test_cache_headers_and_declared_sizes_are_bounded")),
+    (
+        "security: YAML object tags",
+        "`!!python/...` tags refused at their position (exit 2), never constructed; the loader is a "
+        "`SafeLoader` without Python constructors",
+        (
+            "test_python_tags_are_refused_and_never_constructed",
+            "test_the_recipe_loader_is_a_safe_loader_without_python_constructors",
+        ),
+    ),
+    (
+        "security: nothing evaluated",
+        "expressions in limits, bounds, options and lengths are errors (exit 2), never run; no "
+        "`eval`/`exec`/`compile`/`__import__`, pickle, unsafe YAML load or `shell=` in lotproof's code",
+        (
+            "test_no_code_of_lotproof_evaluates_text_or_unpickles",
+            "test_nothing_in_a_recipe_is_evaluated",
+        ),
+    ),
+    (
+        "security: the lot's boundary",
+        "globs with `..` or absolute paths are recipe errors (exit 2); wildcards never match `..`; a "
+        "symbolic link out of the lot makes that image `incomplete` (exit 3), its bytes unread",
+        (
+            "test_globs_that_leave_the_lot_are_recipe_errors",
+            "test_globs_that_look_outward_find_nothing_outside",
+            "test_symbolic_links_out_of_the_lot_are_refused_per_image",
+        ),
+    ),
+    (
+        "security: names",
+        "run folders are one sanitised name directly under `--out`; image names become safe file "
+        "names inside the run folder",
+        (
+            "test_run_folder_names_are_sanitised",
+            "test_lot_files_with_odd_names_stay_inside_the_run_folder",
+        ),
+    ),
+    (
+        "security: the lot is read-only to lotproof",
+        "names, modes, times and bytes of the lot unchanged by runs; every open of a lot file is "
+        "`O_RDONLY` (audit hook); `--out` or `--cache` inside the lot is refused (exit 2)",
+        (
+            "test_a_run_leaves_the_lot_exactly_as_it_was",
+            "test_output_or_cache_inside_the_lot_is_refused",
+            "test_lot_files_are_opened_read_only_and_never_changed",
+        ),
+    ),
+    (
+        "security: bounded loads",
+        "recipes over 1,000,000 bytes, inputs over 2 GiB (checked before reading) and cache headers "
+        "over 16 MiB are refused; declared array sizes are checked before allocation",
+        (
+            "test_a_recipe_over_the_size_bound_is_refused_before_parsing",
+            "test_a_recipe_that_is_a_pipe_is_bounded",
+            "test_an_input_over_the_size_bound_is_refused_before_it_is_read",
+            "test_a_sparse_input_of_more_than_2_GiB_is_refused_without_reading_it",
+            "test_cache_headers_and_declared_sizes_are_bounded",
+        ),
+    ),
 ]
 
 
@@ -105,13 +149,17 @@ class _Collector:
             function = getattr(item, "function", None)
             # hypothesis keeps a test's settings on the function it wraps
             chosen = getattr(function, "_hypothesis_internal_use_settings", None)
-            self.items.append(_Item(
-                file=Path(str(item.fspath)).name,
-                function=item.originalname,
-                nodeid=item.nodeid,
-                xfail=marker.kwargs.get("reason", "") if marker is not None else None,
-                max_examples=chosen.max_examples if chosen is not None and hasattr(function, "hypothesis") else None,
-            ))
+            self.items.append(
+                _Item(
+                    file=Path(str(item.fspath)).name,
+                    function=item.originalname,
+                    nodeid=item.nodeid,
+                    xfail=marker.kwargs.get("reason", "") if marker is not None else None,
+                    max_examples=chosen.max_examples
+                    if chosen is not None and hasattr(function, "hypothesis")
+                    else None,
+                )
+            )
 
 
 def collect() -> list[_Item]:
@@ -119,8 +167,10 @@ def collect() -> list[_Item]:
     collector = _Collector()
     paths = [str(TESTS / name) for name in FILES if (TESTS / name).exists()]
     with contextlib.redirect_stdout(io.StringIO()) as shown:
-        code = pytest.main(["--collect-only", "-q", "-p", "no:cacheprovider", "--rootdir", str(ROOT), *paths],
-                           plugins=[collector])
+        code = pytest.main(
+            ["--collect-only", "-q", "-p", "no:cacheprovider", "--rootdir", str(ROOT), *paths],
+            plugins=[collector],
+        )
     if code != 0:
         raise SystemExit(f"collection failed (pytest exit {code}):\n{shown.getvalue()}")
     return collector.items
@@ -137,12 +187,16 @@ def _known(items: list[_Item]) -> str:
     return f" ({_plural(n, 'known defect')}, strict xfail)" if n else ""
 
 
-def _rows_for(items: list[_Item], rows: list[tuple[str, str, tuple[str, ...]]], file: str) -> list[str]:
+def _rows_for(
+    items: list[_Item], rows: list[tuple[str, str, tuple[str, ...]]], file: str
+) -> list[str]:
     mine = [i for i in items if i.file == file]
     claimed = {name for _, _, names in rows for name in names}
     unclaimed = sorted({i.function for i in mine} - claimed)
     if unclaimed:
-        raise SystemExit(f"{file}: tests in no row of tests/reliability_table.py: {', '.join(unclaimed)}")
+        raise SystemExit(
+            f"{file}: tests in no row of tests/reliability_table.py: {', '.join(unclaimed)}"
+        )
     lines = []
     for title, outcome, names in rows:
         cases = [i for i in mine if i.function in names]
@@ -157,7 +211,11 @@ def _bad_recipes(items: list[_Item]) -> list[str]:
     tests = [i for i in items if i.file == "test_bad_recipes.py"]
     per_file = {i.function for i in tests if i.nodeid.endswith(".yaml]")}
     known = f" ({_plural(wrong, 'message')} known to be imprecise, strict xfail)" if wrong else ""
-    misfit = [i for i in tests if i.function == "test_from_image_recipe_on_uncalibrated_images_is_incomplete_never_pass"]
+    misfit = [
+        i
+        for i in tests
+        if i.function == "test_from_image_recipe_on_uncalibrated_images_is_incomplete_never_pass"
+    ]
     return [
         f"| bad recipes (`tests/bad_inputs/recipes/`) | {len(files)} files, "
         f"{_plural(len(per_file), 'check')} each | `check` and `run` exit 2 with "
@@ -171,7 +229,11 @@ def _bad_recipes(items: list[_Item]) -> list[str]:
 
 def _bad_images(items: list[_Item]) -> list[str]:
     folder = BAD / "images"
-    files = sorted(p for p in folder.iterdir() if p.suffix not in (".py", ".json", ".md")) if folder.is_dir() else []
+    files = (
+        sorted(p for p in folder.iterdir() if p.suffix not in (".py", ".json", ".md"))
+        if folder.is_dir()
+        else []
+    )
     tests = [i for i in items if i.file == "test_bad_images.py"]
     if not files:
         return ["| bad images | see issue 9, in progress | |"]

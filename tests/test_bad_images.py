@@ -84,7 +84,9 @@ def _recipe(folder: Path, *, gray: bool = False, lossy: bool = False) -> Path:
     text = RECIPE.format(gray=GRAY if gray else "", source="luma" if gray else "section")
     if lossy:
         text = text.replace("pixel_size: 0.5 um\n", "pixel_size: 0.5 um\nlossy_input: allow\n")
-    path = folder / ("recipe-gray.yaml" if gray else "recipe-lossy.yaml" if lossy else "recipe.yaml")
+    path = folder / (
+        "recipe-gray.yaml" if gray else "recipe-lossy.yaml" if lossy else "recipe.yaml"
+    )
     path.write_text(text)
     return path
 
@@ -137,9 +139,10 @@ def test_committed_files_are_the_generator_output(tmp_path: Path) -> None:
     committed = sorted(p.name for p in IMAGES.iterdir() if p.is_file() and p.suffix != ".py")
     assert committed == sorted(written)
     for name, data in written.items():
-        assert hashlib.sha256((IMAGES / name).read_bytes()).hexdigest() == hashlib.sha256(
-            data
-        ).hexdigest(), f"{name} differs from make_bad_images.py's output; rerun the script"
+        assert (
+            hashlib.sha256((IMAGES / name).read_bytes()).hexdigest()
+            == hashlib.sha256(data).hexdigest()
+        ), f"{name} differs from make_bad_images.py's output; rerun the script"
     assert sorted(EXPECTED) == sorted(MAKE.FILES)
 
 
@@ -174,7 +177,8 @@ def test_cli_json_lists_every_bad_file(tmp_path: Path, capsys: pytest.CaptureFix
     for name, reason in EXPECTED.items():
         assert reason in document["incomplete"][name], name
     assert {name: limit["verdict"] for name, limit in document["limits"].items()} == {
-        "fraction": "incomplete", "mean-fraction": "incomplete"
+        "fraction": "incomplete",
+        "mean-fraction": "incomplete",
     }
     for image, verdict in document["limits"]["fraction"]["images"].items():
         assert verdict == ("pass" if image in GOOD else "incomplete"), (image, verdict)
@@ -294,7 +298,9 @@ def test_huge_header_is_refused_before_decoding(
     assert "AssertionError" not in str(refused.value)
 
 
-def test_no_decoding_patch_does_stop_a_read(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+def test_no_decoding_patch_does_stop_a_read(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     """The patch above is not a no-op: a good file can no longer be read under it."""
     tifffile.imwrite(tmp_path / "good.tif", MAKE._field())
     _no_decoding(monkeypatch)
@@ -363,7 +369,9 @@ def test_symbolic_link_inside_the_lot_is_read(tmp_path: Path) -> None:
     (lot / "link.tif").symlink_to(Path("sub") / "real.tif")
     summary = run_lot(_recipe(tmp_path), lot, tmp_path / "runs")
     assert {r.id: r.status for r in summary.results} == {
-        "good-a.tif": "ok", "good-b.tif": "ok", "link.tif": "ok"
+        "good-a.tif": "ok",
+        "good-b.tif": "ok",
+        "link.tif": "ok",
     }
 
 

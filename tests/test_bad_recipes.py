@@ -55,7 +55,10 @@ def expectations() -> dict[str, Expectation]:
         if match:
             line, column, message = match.groups()
             found[path.name] = Expectation(
-                int(line), int(column) if column else None, message.decode("utf-8"), entry.get("xfail")
+                int(line),
+                int(column) if column else None,
+                message.decode("utf-8"),
+                entry.get("xfail"),
             )
         else:
             found[path.name] = Expectation(
@@ -146,7 +149,9 @@ def test_run_exits_2_and_writes_nothing(
     lot = _lot(tmp_path)
     before = _tree_digest(lot)
     out, cache = tmp_path / "runs", tmp_path / "cache"
-    code = _exit_code(["run", str(path), str(lot), "--out", str(out), "--cache", str(cache), "-j", "1"])
+    code = _exit_code(
+        ["run", str(path), str(lot), "--out", str(out), "--cache", str(cache), "-j", "1"]
+    )
     assert code == EXIT_INVALID
     captured = capsys.readouterr()
     assert "Traceback" not in captured.err + captured.out
@@ -174,8 +179,13 @@ def test_check_json_lists_the_problems(capsys: pytest.CaptureFixture[str]) -> No
     assert _exit_code(["check", "--json", str(path)]) == EXIT_INVALID
     document = json.loads(capsys.readouterr().out)
     assert document["ok"] is False
-    assert {"file": str(path), "line": 11, "column": 9, "where": "steps.level.to",
-            "what": "steps form a cycle: level -> pores -> stats -> level"} in document["problems"]
+    assert {
+        "file": str(path),
+        "line": 11,
+        "column": 9,
+        "where": "steps.level.to",
+        "what": "steps form a cycle: level -> pores -> stats -> level",
+    } in document["problems"]
 
 
 # ---------------------------------------------------------------- a recipe that does not fit its lot

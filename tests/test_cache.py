@@ -94,7 +94,9 @@ def test_keys_stay_the_same() -> None:
     kind = REGISTRY["open"]
     params = kind.params.model_validate({"footprint": "disk", "radius": "1.5 um"})
     params = params.model_copy(update={"radius": resolve_to_px(params.radius, 0.5)})
-    key = step_key("open", "1", params, (0.5, 0.5), ["a" * 64], {"numpy": "2.0.0", "scipy": "1.0.0"})
+    key = step_key(
+        "open", "1", params, (0.5, 0.5), ["a" * 64], {"numpy": "2.0.0", "scipy": "1.0.0"}
+    )
     assert key == "eb9e2a96b2b240e44aeb61cf0b8ff8550ef4a78ef4c12484d4053e5d977b66ce"
     assert input_key("b" * 64, {"pixel_size_um": [0.5, 0.5], "source": "recipe"}) == (
         "8e5f41b38dd1a37354de5086b880edc4d42ab048de075e21cf15d4b4419b60d6"
@@ -102,9 +104,10 @@ def test_keys_stay_the_same() -> None:
     assert input_key("b" * 64, {"pixel_size_um": [0.5, 0.5], "source": "recipe"}) == input_key(
         "b" * 64, {"source": "recipe", "pixel_size_um": [0.5, 0.5]}
     )
-    assert hash_array(np.zeros((2, 3), np.uint8)) == hashlib.sha256(
-        b'{"dtype":"|u1","shape":[2,3]}\x00' + bytes(6)
-    ).hexdigest()
+    assert (
+        hash_array(np.zeros((2, 3), np.uint8))
+        == hashlib.sha256(b'{"dtype":"|u1","shape":[2,3]}\x00' + bytes(6)).hexdigest()
+    )
 
 
 def _keys(text: str) -> dict[str, str]:
@@ -116,8 +119,14 @@ def _keys(text: str) -> dict[str, str]:
         from lotproof.runner.evaluate.image import resolve_params
 
         params = resolve_params(step.params, (0.5, 0.5))
-        keys[name] = step_key(kind.name, kind.version, params, (0.5, 0.5),
-                              [keys[s] for s in step.to], library_versions(kind.libraries))
+        keys[name] = step_key(
+            kind.name,
+            kind.version,
+            params,
+            (0.5, 0.5),
+            [keys[s] for s in step.to],
+            library_versions(kind.libraries),
+        )
     return keys
 
 
@@ -167,8 +176,11 @@ def _results() -> list[object]:
         np.arange(12, dtype=np.uint16).reshape(3, 4),
         np.zeros((0, 5), np.float32),
         np.array([[True, False], [False, True]]),
-        Output(data=np.ones((2, 2), np.float64), values={"level": 12.5, "nan": float("nan")},
-               units={"level": "-", "nan": "-"}),
+        Output(
+            data=np.ones((2, 2), np.float64),
+            values={"level": 12.5, "nan": float("nan")},
+            units={"level": "-", "nan": "-"},
+        ),
         Output(data=table, values={"count": 3.0}, units={"count": "-"}),
     ]
 
@@ -221,7 +233,9 @@ def test_null_store_keeps_nothing() -> None:
     assert store.get("a" * 64) is None
 
 
-def test_default_cache_dir_follows_environment(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
+def test_default_cache_dir_follows_environment(
+    monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+) -> None:
     monkeypatch.setenv("LOTPROOF_CACHE", str(tmp_path / "c"))
     assert default_cache_dir() == tmp_path / "c"
     monkeypatch.delenv("LOTPROOF_CACHE")
@@ -271,7 +285,9 @@ while True:
 
 def test_a_killed_writer_leaves_no_entry_that_reads_as_valid(tmp_path: Path) -> None:
     root = tmp_path / "cache"
-    proc = subprocess.Popen([sys.executable, "-c", _KILLED_WRITER, str(root)], stdout=subprocess.PIPE)
+    proc = subprocess.Popen(
+        [sys.executable, "-c", _KILLED_WRITER, str(root)], stdout=subprocess.PIPE
+    )
     assert proc.stdout is not None and proc.stdout.readline().strip() == b"ready"
     time.sleep(0.5)
     os.kill(proc.pid, signal.SIGKILL)
@@ -375,8 +391,9 @@ def test_jobs_1_and_2_give_identical_files(tmp_path: Path) -> None:
     assert one.results[3].status == "incomplete" and two.results[4].status == "ok"
 
 
-def test_cli_cache_options_and_command(tmp_path: Path, capsys: pytest.CaptureFixture[str],
-                                       monkeypatch: pytest.MonkeyPatch) -> None:
+def test_cli_cache_options_and_command(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
     lot = _lot(tmp_path, n=2)
     recipe = _recipe(tmp_path)
     cache = tmp_path / "cache"

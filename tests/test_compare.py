@@ -51,8 +51,9 @@ def _image(n_spots: int) -> np.ndarray:
     return image
 
 
-def _run(tmp_path: Path, name: str, spots: dict[str, int], revision: int = 1,
-         max_fraction: float = 0.05) -> Path:
+def _run(
+    tmp_path: Path, name: str, spots: dict[str, int], revision: int = 1, max_fraction: float = 0.05
+) -> Path:
     lot = tmp_path / f"lot-{name}"
     lot.mkdir()
     for image, n in spots.items():
@@ -136,8 +137,12 @@ def test_not_a_run_folder(tmp_path: Path) -> None:
         compare_runs(tmp_path, tmp_path)
 
 
-def test_cli_compare(runs: tuple[Path, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str],
-                     monkeypatch: pytest.MonkeyPatch) -> None:
+def test_cli_compare(
+    runs: tuple[Path, Path],
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
     monkeypatch.setenv("COLUMNS", "200")
     a, b = runs
     with pytest.raises(SystemExit) as done:

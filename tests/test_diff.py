@@ -90,7 +90,9 @@ def _write(folder: Path, name: str, text: str) -> Path:
 
 
 def test_reordering_comments_and_spelling_are_identical(tmp_path: Path) -> None:
-    diff = diff_recipes(str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", SAME)))
+    diff = diff_recipes(
+        str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", SAME))
+    )
     assert diff.identical, diff.as_dict()
     assert diff.bytes_differ
     assert diff.warnings == []
@@ -98,7 +100,9 @@ def test_reordering_comments_and_spelling_are_identical(tmp_path: Path) -> None:
 
 def test_changed_radius_is_caught_with_pixels(tmp_path: Path) -> None:
     changed = BASE.replace("radius: 1.5 um", "radius: 2 um")
-    diff = diff_recipes(str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed)))
+    diff = diff_recipes(
+        str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed))
+    )
     assert not diff.identical
     assert [c.as_dict() for c in diff.steps_changed] == [
         # source: closed form, 1.5 um / 0.5 um per pixel = 3 px, 2 um / 0.5 um = 4 px
@@ -111,22 +115,30 @@ def test_changed_radius_is_caught_with_pixels(tmp_path: Path) -> None:
 
 def test_bumped_revision_gives_no_warning(tmp_path: Path) -> None:
     changed = BASE.replace("radius: 1.5 um", "radius: 2 um").replace("revision: 4", "revision: 5")
-    diff = diff_recipes(str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed)))
+    diff = diff_recipes(
+        str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed))
+    )
     assert [c.where for c in diff.top] == ["revision"]
     assert diff.warnings == []
 
 
 def test_pixels_written_for_micrometres_is_a_change_with_a_note(tmp_path: Path) -> None:
     changed = BASE.replace("radius: 1.5 um", "radius: 3 px")
-    diff = diff_recipes(str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed)))
+    diff = diff_recipes(
+        str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed))
+    )
     (change,) = diff.steps_changed
     assert (change.a, change.b) == ("1.5 um (3 px)", "3 px")
     assert "same in pixels" in change.note
 
 
 def test_pixel_size_change_shows_on_every_physical_length(tmp_path: Path) -> None:
-    changed = BASE.replace("pixel_size: 0.5 um", "pixel_size: 0.25 um").replace("revision: 4", "revision: 5")
-    diff = diff_recipes(str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed)))
+    changed = BASE.replace("pixel_size: 0.5 um", "pixel_size: 0.25 um").replace(
+        "revision: 4", "revision: 5"
+    )
+    diff = diff_recipes(
+        str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed))
+    )
     assert [c.as_dict() for c in diff.top] == [
         {"where": "revision", "a": 4, "b": 5, "note": ""},
         {"where": "pixel_size", "a": "0.5 um", "b": "0.25 um", "note": ""},
@@ -140,28 +152,40 @@ def test_pixel_size_change_shows_on_every_physical_length(tmp_path: Path) -> Non
 def test_steps_and_limits_added_removed_changed(tmp_path: Path) -> None:
     changed = (
         BASE.replace("    max: 0.18\n", "    max: 0.2\n")
-        .replace("  largest:\n    value: stats.ecd_max\n    max: 60 um\n",
-                 "  mean-porosity:\n    value: stats.area_fraction\n    over: lot-mean\n    max: 0.15\n")
+        .replace(
+            "  largest:\n    value: stats.ecd_max\n    max: 60 um\n",
+            "  mean-porosity:\n    value: stats.area_fraction\n    over: lot-mean\n    max: 0.15\n",
+        )
         .replace("    to: clean\n    connectivity: 8", "    to: holes\n    connectivity: 4")
         .replace("  stats:\n", "  holes:\n    apply: fill-holes\n    to: clean\n  stats:\n")
     )
-    diff = diff_recipes(str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed)))
+    diff = diff_recipes(
+        str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed))
+    )
     assert diff.steps_added == ["holes"] and diff.steps_removed == []
     assert {c.where: (c.a, c.b) for c in diff.steps_changed} == {
         "steps.stats.to": (["clean"], ["holes"]),
         "steps.stats.connectivity": (8, 4),
     }
     assert diff.limits_added == ["mean-porosity"] and diff.limits_removed == ["largest"]
-    assert [(c.where, c.a, c.b) for c in diff.limits_changed] == [("limits.porosity.max", "0.18", "0.2")]
+    assert [(c.where, c.a, c.b) for c in diff.limits_changed] == [
+        ("limits.porosity.max", "0.18", "0.2")
+    ]
 
 
 def test_another_step_kind_is_one_change(tmp_path: Path) -> None:
     changed = BASE.replace("apply: open", "apply: close")
-    diff = diff_recipes(str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed)))
-    assert [(c.where, c.a, c.b) for c in diff.steps_changed] == [("steps.clean.apply", "open", "close")]
+    diff = diff_recipes(
+        str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed))
+    )
+    assert [(c.where, c.a, c.b) for c in diff.steps_changed] == [
+        ("steps.clean.apply", "open", "close")
+    ]
 
 
-def test_invalid_recipe_is_a_recipe_error(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_invalid_recipe_is_a_recipe_error(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     bad = _write(tmp_path, "b.yaml", BASE.replace("radius: 1.5 um", "radius: 3"))
     good = _write(tmp_path, "a.yaml", BASE)
     with pytest.raises(RecipeError) as info:
@@ -175,9 +199,21 @@ def test_invalid_recipe_is_a_recipe_error(tmp_path: Path, capsys: pytest.Capture
 
 def _git(repo: Path, *args: str) -> str:
     done = subprocess.run(
-        ["git", "-C", str(repo), "-c", "user.name=t", "-c", "user.email=t@t",
-         "-c", "commit.gpgsign=false", *args],
-        capture_output=True, check=True, text=True,
+        [
+            "git",
+            "-C",
+            str(repo),
+            "-c",
+            "user.name=t",
+            "-c",
+            "user.email=t@t",
+            "-c",
+            "commit.gpgsign=false",
+            *args,
+        ],
+        capture_output=True,
+        check=True,
+        text=True,
     )
     return done.stdout.strip()
 
@@ -190,8 +226,11 @@ def repo(tmp_path: Path) -> Path:
     _write(repo / "recipes", "disc.yaml", BASE)
     _git(repo, "add", ".")
     _git(repo, "commit", "-q", "-m", "r4")
-    _write(repo / "recipes", "disc.yaml", BASE.replace("radius: 1.5 um", "radius: 2 um")
-           .replace("revision: 4", "revision: 5"))
+    _write(
+        repo / "recipes",
+        "disc.yaml",
+        BASE.replace("radius: 1.5 um", "radius: 2 um").replace("revision: 4", "revision: 5"),
+    )
     _git(repo, "commit", "-q", "-am", "r5")
     return repo
 
@@ -205,7 +244,9 @@ def test_path_at_git_revision(repo: Path) -> None:
     assert diff_recipes(f"{recipe}@HEAD", str(recipe)).identical
 
 
-def test_path_at_revision_from_another_folder(repo: Path, monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
+def test_path_at_revision_from_another_folder(
+    repo: Path, monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+) -> None:
     elsewhere = tmp_path / "elsewhere"
     elsewhere.mkdir()
     monkeypatch.chdir(elsewhere)

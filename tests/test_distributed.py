@@ -54,8 +54,9 @@ class FaultProbeParams(StepParams):
     )
 
 
-def fault_probe(params: FaultProbeParams, image: np.ndarray, level: np.ndarray, *,
-                spacing: tuple[float, ...]) -> np.ndarray:
+def fault_probe(
+    params: FaultProbeParams, image: np.ndarray, level: np.ndarray, *, spacing: tuple[float, ...]
+) -> np.ndarray:
     """Test only: end this process on the trigger image while the marker file exists; else pass ``level`` on."""
     if int(image.flat[0]) == params.trigger:
         marker = Path(params.marker)
@@ -72,8 +73,15 @@ def fault_probe(params: FaultProbeParams, image: np.ndarray, level: np.ndarray, 
 
 def register_probe() -> None:
     if PROBE not in REGISTRY:
-        step(PROBE, params=FaultProbeParams, takes=["image", "image"], gives="image", version="1",
-             ndims=(2,), libraries=("numpy",))(fault_probe)
+        step(
+            PROBE,
+            params=FaultProbeParams,
+            takes=["image", "image"],
+            gives="image",
+            version="1",
+            ndims=(2,),
+            libraries=("numpy",),
+        )(fault_probe)
 
 
 class ProbePlugin(distributed.WorkerPlugin):
@@ -227,11 +235,14 @@ def _workers(executor: Any) -> set[str]:
 def test_demo_lot_gives_the_local_executors_files(tmp_path: Path, executor: Any) -> None:
     recipe = load_recipe(DEMO_RECIPE)
     local = run_lot(recipe, DEMO_LOT, tmp_path / "local", store=DiskStore(tmp_path / "c1"), jobs=1)
-    dask = run_lot(recipe, DEMO_LOT, tmp_path / "dask", store=DiskStore(tmp_path / "c2"),
-                   executor=executor)
+    dask = run_lot(
+        recipe, DEMO_LOT, tmp_path / "dask", store=DiskStore(tmp_path / "c2"), executor=executor
+    )
     # source: the local executor (lotproof.runner.lot.local.LocalExecutor, jobs=1), the reference run
     assert [r.id for r in dask.results] == [r.id for r in local.results]
-    assert [(r.status, r.reason) for r in dask.results] == [(r.status, r.reason) for r in local.results]
+    assert [(r.status, r.reason) for r in dask.results] == [
+        (r.status, r.reason) for r in local.results
+    ]
     assert all(r.status == "ok" for r in dask.results)
     assert _run_files(dask.run_dir) == _run_files(local.run_dir)
     assert _ledger(dask.run_dir) == _ledger(local.run_dir)
@@ -243,21 +254,29 @@ def test_demo_lot_gives_the_local_executors_files(tmp_path: Path, executor: Any)
     assert workers and all(w.split(":")[1] != str(os.getpid()) for w in workers)
 
 
-def test_synthetic_lot_with_a_broken_image_cold_then_warm(tmp_path: Path, executor: Any,
-                                                          monkeypatch: pytest.MonkeyPatch) -> None:
+def test_synthetic_lot_with_a_broken_image_cold_then_warm(
+    tmp_path: Path, executor: Any, monkeypatch: pytest.MonkeyPatch
+) -> None:
     lot = _lot(tmp_path, 6, broken=4)
     (tmp_path / "recipe.yaml").write_text(SYNTH_RECIPE)
     recipe = load_recipe(tmp_path / "recipe.yaml")
     # workers do not share our working folder: relative lot and cache paths must still work
     monkeypatch.chdir(tmp_path)
     assert lot == tmp_path / "lot"
-    local = run_lot(recipe, Path("lot"), Path("local"), store=DiskStore(Path("c1")),
-                    executor=LocalExecutor(1))
-    cold = run_lot(recipe, Path("lot"), Path("dask"), store=DiskStore(Path("c2")), executor=executor)
-    warm = run_lot(recipe, Path("lot"), Path("dask"), store=DiskStore(Path("c2")), executor=executor)
+    local = run_lot(
+        recipe, Path("lot"), Path("local"), store=DiskStore(Path("c1")), executor=LocalExecutor(1)
+    )
+    cold = run_lot(
+        recipe, Path("lot"), Path("dask"), store=DiskStore(Path("c2")), executor=executor
+    )
+    warm = run_lot(
+        recipe, Path("lot"), Path("dask"), store=DiskStore(Path("c2")), executor=executor
+    )
     # source: the local executor (lotproof.runner.lot.local.LocalExecutor, jobs=1), the reference run
     assert _run_files(cold.run_dir) == _run_files(local.run_dir)
-    assert _run_files(warm.run_dir, cache_column=False) == _run_files(cold.run_dir, cache_column=False)
+    assert _run_files(warm.run_dir, cache_column=False) == _run_files(
+        cold.run_dir, cache_column=False
+    )
     assert _ledger(cold.run_dir) == _ledger(local.run_dir)
     assert cold.results[4].status == "incomplete" and "not a TIFF" not in cold.results[0].reason
     assert cold.results[4].reason == local.results[4].reason
@@ -273,8 +292,13 @@ def test_results_come_back_in_the_samples_order_and_on_image_sees_each_once(
     lot = _lot(tmp_path, 5)
     (tmp_path / "recipe.yaml").write_text(SYNTH_RECIPE)
     seen: list[str] = []
-    summary = run_lot(load_recipe(tmp_path / "recipe.yaml"), lot, tmp_path / "runs",
-                      executor=executor, on_image=lambda r: seen.append(r.id))
+    summary = run_lot(
+        load_recipe(tmp_path / "recipe.yaml"),
+        lot,
+        tmp_path / "runs",
+        executor=executor,
+        on_image=lambda r: seen.append(r.id),
+    )
     ids = [f"img-{i:02d}.tif" for i in range(5)]
     assert [r.id for r in summary.results] == ids
     assert sorted(seen) == ids
@@ -322,18 +346,24 @@ def test_a_worker_dying_mid_image_is_retried_once_and_the_lot_completes(
     assert local.exit_code == EXIT_OK
     before = _workers(executor)
     marker.touch()
-    dask = run_lot(recipe, lot, tmp_path / "dask", store=DiskStore(tmp_path / "c2"), executor=executor)
+    dask = run_lot(
+        recipe, lot, tmp_path / "dask", store=DiskStore(tmp_path / "c2"), executor=executor
+    )
     # the probe did end a worker: it claimed the marker
     assert not marker.exists() and (tmp_path / "die-once.taken").exists()
     assert _workers(executor) != before or len(before) < 2
     assert [r.status for r in dask.results] == ["ok"] * 6 and dask.exit_code == EXIT_OK
     # source: the local executor (lotproof.runner.lot.local.LocalExecutor, jobs=1), the reference run
     # (the retried image read its first step from the cache: steps.csv says "reused")
-    assert _run_files(dask.run_dir, cache_column=False) == _run_files(local.run_dir, cache_column=False)
+    assert _run_files(dask.run_dir, cache_column=False) == _run_files(
+        local.run_dir, cache_column=False
+    )
     retried = dask.results[2]
     # nothing already computed was lost: the retry read the first step from the cache
     assert [(s.step, s.cache) for s in retried.steps] == [
-        ("level", "reused"), ("probed", "computed"), ("spots", "computed")
+        ("level", "reused"),
+        ("probed", "computed"),
+        ("spots", "computed"),
     ]
     assert any("stopped; analysed again" in note for note in retried.notes)
     assert all(not r.notes for i, r in enumerate(dask.results) if i != 2)
@@ -346,7 +376,9 @@ def test_an_image_that_kills_every_worker_is_incomplete_with_the_reason(
     marker = tmp_path / "die-always"
     marker.touch()
     recipe = _probe_recipe(tmp_path, marker, "always")
-    summary = run_lot(recipe, lot, tmp_path / "dask", store=DiskStore(tmp_path / "c"), executor=executor)
+    summary = run_lot(
+        recipe, lot, tmp_path / "dask", store=DiskStore(tmp_path / "c"), executor=executor
+    )
     statuses = {r.id: r.status for r in summary.results}
     # precisely incomplete: the image that killed its workers, and only it
     assert statuses == {f"img-{i:02d}.tif": ("incomplete" if i == 1 else "ok") for i in range(5)}
@@ -354,14 +386,18 @@ def test_an_image_that_kills_every_worker_is_incomplete_with_the_reason(
     assert "every worker that analysed it stopped" in reason and "2 tries" in reason
     assert summary.exit_code == EXIT_BAD_INPUT and summary.verdicts.lot == "incomplete"
     events = _image_events(summary.run_dir)
-    assert events["img-01.tif"]["status"] == "incomplete" and events["img-01.tif"]["reason"] == reason
+    assert (
+        events["img-01.tif"]["status"] == "incomplete" and events["img-01.tif"]["reason"] == reason
+    )
     verdicts = json.loads((summary.run_dir / "verdicts.json").read_text())
     assert verdicts["incomplete_images"] == {"img-01.tif": reason}
     # the first step of the image that killed its workers was kept in the cache
     marker.unlink()
-    again = run_lot(recipe, lot, tmp_path / "dask", store=DiskStore(tmp_path / "c"), executor=executor)
+    again = run_lot(
+        recipe, lot, tmp_path / "dask", store=DiskStore(tmp_path / "c"), executor=executor
+    )
     assert again.exit_code == EXIT_OK
-    assert [(s.step, s.cache) for s in again.results[1].steps][0] == ("level", "reused")
+    assert next((s.step, s.cache) for s in again.results[1].steps) == ("level", "reused")
 
 
 # ------------------------------------------------------------------ choosing an executor
@@ -381,7 +417,9 @@ def test_make_executor_refuses_options_that_do_not_go_together() -> None:
         make_executor("dask", jobs=1, scheduler="tcp://127.0.0.1:8786", workers=2)
 
 
-def test_dask_without_a_scheduler_address_says_how_to_give_one(monkeypatch: pytest.MonkeyPatch) -> None:
+def test_dask_without_a_scheduler_address_says_how_to_give_one(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
     import dask
 
     monkeypatch.delenv("DASK_SCHEDULER_ADDRESS", raising=False)
@@ -394,7 +432,9 @@ def test_an_unreachable_scheduler_is_an_executor_error() -> None:
     from lotproof.runner.lot.cluster import DaskExecutor
 
     # nothing listens on port 1 of loopback; the client keeps trying until its timeout
-    with pytest.raises(ExecutorError, match="cannot reach the dask scheduler at tcp://127.0.0.1:1"):
+    with pytest.raises(
+        ExecutorError, match=r"cannot reach the dask scheduler at tcp://127\.0\.0\.1:1"
+    ):
         DaskExecutor(scheduler="tcp://127.0.0.1:1", connect_timeout=0.5)
 
 
@@ -405,8 +445,12 @@ def test_a_worker_with_other_software_analyses_nothing() -> None:
     other = software_fingerprint()
     other["libraries"] = {**other["libraries"], "numpy": "0.0.1"}
     result = _analyse_on_worker(
-        Sample(id="a.tif", files={}), recipe_raw=SYNTH_RECIPE.encode(), recipe_path="recipe.yaml",
-        lot="/nonexistent", cache_root=None, fingerprint=other,
+        Sample(id="a.tif", files={}),
+        recipe_raw=SYNTH_RECIPE.encode(),
+        recipe_path="recipe.yaml",
+        lot="/nonexistent",
+        cache_root=None,
+        fingerprint=other,
     )
     assert result.status == "incomplete"
     assert "differs from the machine that started the run" in result.reason

@@ -53,7 +53,9 @@ def test_statement_subjects_are_the_outputs_with_their_digests(record: Path) -> 
     assert "recipe.yaml" in names and "SHA256SUMS" in names
     for subject in statement["subject"]:
         # source: the files themselves, hashed with hashlib
-        assert subject["digest"] == {"sha256": hashlib.sha256((record / subject["name"]).read_bytes()).hexdigest()}
+        assert subject["digest"] == {
+            "sha256": hashlib.sha256((record / subject["name"]).read_bytes()).hexdigest()
+        }
 
 
 def test_statement_predicate(record: Path) -> None:
@@ -89,8 +91,16 @@ def test_dsse_envelope_verifies_over_pae(record: Path, keys: tuple[Path, Path]) 
     (signature,) = envelope["signatures"]
     public = load_pem_public_key(keys[1].read_bytes())
     # the same layout, spelled out again from the DSSE protocol text
-    message = b"DSSEv1 " + str(len(PAYLOAD_TYPE)).encode() + b" " + PAYLOAD_TYPE.encode() + b" " \
-        + str(len(body)).encode() + b" " + body
+    message = (
+        b"DSSEv1 "
+        + str(len(PAYLOAD_TYPE)).encode()
+        + b" "
+        + PAYLOAD_TYPE.encode()
+        + b" "
+        + str(len(body)).encode()
+        + b" "
+        + body
+    )
     public.verify(base64.b64decode(signature["sig"]), message)  # type: ignore[union-attr]
     from cryptography.hazmat.primitives.serialization import Encoding, PublicFormat
 
@@ -114,7 +124,9 @@ def test_prov_document_structure(record: Path) -> None:
     # measure uses the threshold's result; threshold uses the input image
     assert ("lp:step/disc-00.tif/stats", "lp:result/disc-00.tif/spots") in used
     assert ("lp:step/disc-00.tif/spots", "lp:input/disc-00.tif/section") in used
-    generated = {(g["prov:entity"], g["prov:activity"]) for g in document["wasGeneratedBy"].values()}
+    generated = {
+        (g["prov:entity"], g["prov:activity"]) for g in document["wasGeneratedBy"].values()
+    }
     assert ("lp:result/disc-01.tif/stats", "lp:step/disc-01.tif/stats") in generated
     agents = document["agent"]
     assert any(a.startswith("lp:agent/lotproof/") for a in agents)
@@ -158,8 +170,9 @@ def test_prov_reads_only_the_ledger(record: Path, tmp_path: Path) -> None:
     assert verify_run(run).status == "altered"
 
 
-def test_cli_export(record: Path, keys: tuple[Path, Path], tmp_path: Path,
-                    capsys: pytest.CaptureFixture[str]) -> None:
+def test_cli_export(
+    record: Path, keys: tuple[Path, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     with pytest.raises(SystemExit) as done:
         main(["export", str(record), "--attestation"])
     assert done.value.code == EXIT_OK

@@ -63,7 +63,14 @@ limits:
 IMAGES = 3
 STEPS = 3
 #: files of a run folder that do not depend on the cache, the time or the run folder's name
-STABLE = ("recipe.yaml", "resolved.json", "images.csv", "objects.csv", "inputs.json", "verdicts.json")
+STABLE = (
+    "recipe.yaml",
+    "resolved.json",
+    "images.csv",
+    "objects.csv",
+    "inputs.json",
+    "verdicts.json",
+)
 
 
 def _image(seed: int) -> np.ndarray:
@@ -93,8 +100,11 @@ def world(tmp_path_factory: pytest.TempPathFactory) -> dict[str, object]:
 
 
 def _stable_files(run: Path) -> dict[str, bytes]:
-    figures = [p.relative_to(run).as_posix() for p in sorted(run.glob("figures/*"))
-               if not p.name.startswith(".tmp-")]  # a temporary file is not a run file
+    figures = [
+        p.relative_to(run).as_posix()
+        for p in sorted(run.glob("figures/*"))
+        if not p.name.startswith(".tmp-")
+    ]  # a temporary file is not a run file
     names = list(STABLE) + figures
     return {name: (run / name).read_bytes() for name in names if (run / name).is_file()}
 
@@ -114,7 +124,10 @@ def _assert_cache_whole(cache: Path) -> dict[str, Path]:
 
 
 def _assert_unfinished(
-    run: Path, world: dict[str, object], capsys: pytest.CaptureFixture[str], status: str = "unfinished"
+    run: Path,
+    world: dict[str, object],
+    capsys: pytest.CaptureFixture[str],
+    status: str = "unfinished",
 ) -> None:
     report = verify_run(run)
     assert report.status == status, report.problems
@@ -129,7 +142,9 @@ def _assert_unfinished(
         assert data == reference[name], name
 
 
-def _next_run_completes(world: dict[str, object], cache: Path, out: Path, cached: dict[str, Path]) -> None:
+def _next_run_completes(
+    world: dict[str, object], cache: Path, out: Path, cached: dict[str, Path]
+) -> None:
     summary = run_lot(world["recipe"], world["lot"], out, store=DiskStore(cache))  # type: ignore[arg-type]
     assert summary.exit_code == world["code"]
     assert verify_run(summary.run_dir).status == "intact"
@@ -165,12 +180,26 @@ main(sys.argv[4:])
 """
 
 
-def _killed_run(world: dict[str, object], folder: Path, point: int, when: str) -> subprocess.CompletedProcess[bytes]:
-    argv = ["run", str(world["recipe"]), str(world["lot"]), "--out", str(folder / "runs"),
-            "--cache", str(folder / "cache"), "-j", "1", "-q"]
+def _killed_run(
+    world: dict[str, object], folder: Path, point: int, when: str
+) -> subprocess.CompletedProcess[bytes]:
+    argv = [
+        "run",
+        str(world["recipe"]),
+        str(world["lot"]),
+        "--out",
+        str(folder / "runs"),
+        "--cache",
+        str(folder / "cache"),
+        "-j",
+        "1",
+        "-q",
+    ]
     return subprocess.run(
         [sys.executable, "-c", _KILLED_RUN, str(point), when, str(folder / "count"), *argv],
-        capture_output=True, timeout=120, check=False,
+        capture_output=True,
+        timeout=120,
+        check=False,
     )
 
 
@@ -197,8 +226,12 @@ def _kill_points() -> list[tuple[float, str]]:
 
 @pytest.mark.parametrize(("fraction", "when"), _kill_points())
 def test_a_run_killed_at_an_io_point(
-    world: dict[str, object], io_points: int, tmp_path: Path, capsys: pytest.CaptureFixture[str],
-    fraction: float, when: str,
+    world: dict[str, object],
+    io_points: int,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    fraction: float,
+    when: str,
 ) -> None:
     point = max(1, min(io_points, round(fraction * io_points)))
     if fraction == 0.999:
@@ -224,11 +257,25 @@ def test_a_run_killed_at_an_io_point(
 def test_a_run_with_workers_killed_from_outside(
     world: dict[str, object], tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    argv = ["run", str(world["recipe"]), str(world["lot"]), "--out", str(tmp_path / "runs"),
-            "--cache", str(tmp_path / "cache"), "-j", "2", "-q"]
+    argv = [
+        "run",
+        str(world["recipe"]),
+        str(world["lot"]),
+        "--out",
+        str(tmp_path / "runs"),
+        "--cache",
+        str(tmp_path / "cache"),
+        "-j",
+        "2",
+        "-q",
+    ]
     code = f"from lotproof.runner.cli.main import main; main({argv!r})"
-    proc = subprocess.Popen([sys.executable, "-c", code], start_new_session=True,
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    proc = subprocess.Popen(
+        [sys.executable, "-c", code],
+        start_new_session=True,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
     time.sleep(random.Random(4).uniform(1.5, 3.5))  # seeded; any moment must be safe
     if proc.poll() is None:
         os.killpg(proc.pid, signal.SIGKILL)  # the run and its worker processes
@@ -254,7 +301,17 @@ def test_damaged_cache_entries_are_found_and_recomputed(
     world: dict[str, object], tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
     cache, out = tmp_path / "cache", tmp_path / "runs"
-    argv = ["run", str(world["recipe"]), str(world["lot"]), "--out", str(out), "--cache", str(cache), "-j", "1"]
+    argv = [
+        "run",
+        str(world["recipe"]),
+        str(world["lot"]),
+        "--out",
+        str(out),
+        "--cache",
+        str(cache),
+        "-j",
+        "1",
+    ]
     with pytest.raises(SystemExit) as ended:
         main(argv)
     assert ended.value.code == world["code"]
@@ -265,7 +322,9 @@ def test_damaged_cache_entries_are_found_and_recomputed(
     raw[len(raw) // 2] ^= 0x01  # one bit in the payload
     flipped.write_bytes(bytes(raw))
     cut.write_bytes(cut.read_bytes()[:-7])  # truncated
-    swapped.write_bytes(entries[5][1].read_bytes())  # another entry's bytes: the header names another key
+    swapped.write_bytes(
+        entries[5][1].read_bytes()
+    )  # another entry's bytes: the header names another key
     emptied.write_bytes(b"")
     capsys.readouterr()
     with pytest.raises(SystemExit) as ended:
@@ -323,7 +382,19 @@ class _FullDisk:
 
 def _run_cli(world: dict[str, object], out: Path, cache: Path) -> int | str | None:
     with pytest.raises(SystemExit) as ended:
-        main(["run", str(world["recipe"]), str(world["lot"]), "--out", str(out), "--cache", str(cache), "-j", "1"])
+        main(
+            [
+                "run",
+                str(world["recipe"]),
+                str(world["lot"]),
+                "--out",
+                str(out),
+                "--cache",
+                str(cache),
+                "-j",
+                "1",
+            ]
+        )
     return ended.value.code
 
 
@@ -339,8 +410,12 @@ def out_points(world: dict[str, object], tmp_path_factory: pytest.TempPathFactor
 
 @pytest.mark.parametrize("fraction", [0.0, 0.2, 0.5, 0.8, 1.0])
 def test_a_full_disk_under_the_run_folder_is_a_clear_error(
-    world: dict[str, object], out_points: int, tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
-    capsys: pytest.CaptureFixture[str], fraction: float,
+    world: dict[str, object],
+    out_points: int,
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
+    fraction: float,
 ) -> None:
     after = min(out_points - 1, int(fraction * out_points))  # the last write fails at 1.0
     _FullDisk(monkeypatch, tmp_path / "runs", after=after)
@@ -356,7 +431,9 @@ def test_a_full_disk_under_the_run_folder_is_a_clear_error(
 
 
 def test_a_full_disk_under_the_cache_is_a_note_and_the_run_is_whole(
-    world: dict[str, object], tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+    world: dict[str, object],
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
     capsys: pytest.CaptureFixture[str],
 ) -> None:
     # The cache is a convenience, the run folder is the evidence: a cache that cannot
@@ -382,8 +459,18 @@ def test_a_full_disk_under_the_cache_is_a_note_and_the_run_is_whole(
 def test_two_runs_at_once_on_one_cache_and_one_output_folder(
     world: dict[str, object], tmp_path: Path
 ) -> None:
-    argv = ["run", str(world["recipe"]), str(world["lot"]), "--out", str(tmp_path / "runs"),
-            "--cache", str(tmp_path / "cache"), "-j", "1", "-q"]
+    argv = [
+        "run",
+        str(world["recipe"]),
+        str(world["lot"]),
+        "--out",
+        str(tmp_path / "runs"),
+        "--cache",
+        str(tmp_path / "cache"),
+        "-j",
+        "1",
+        "-q",
+    ]
     go = tmp_path / "go"
     # both processes import everything first, then start their runs together
     code = (
@@ -392,7 +479,9 @@ def test_two_runs_at_once_on_one_cache_and_one_output_folder(
         f"main({argv!r})\n"
     )
     procs = [
-        subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+        subprocess.Popen(
+            [sys.executable, "-c", code], stdout=subprocess.PIPE, stderr=subprocess.PIPE
+        )
         for _ in range(2)
     ]
     go.write_bytes(b"")

@@ -72,9 +72,7 @@ def test_gray_drops_alpha_and_keeps_value_scale():
 def test_gray_bt709_on_uint16():
     rgb = np.array([[[65535, 0, 0], [0, 65535, 0], [0, 0, 65535]]], dtype=np.uint16)
     out = gray(GrayParams(weights="bt709"), rgb, spacing=SPACING)
-    np.testing.assert_allclose(
-        out, [[0.2126 * 65535, 0.7152 * 65535, 0.0722 * 65535]], rtol=1e-15
-    )
+    np.testing.assert_allclose(out, [[0.2126 * 65535, 0.7152 * 65535, 0.0722 * 65535]], rtol=1e-15)
 
 
 def test_gray_refuses_other_shapes_and_weights():

@@ -112,7 +112,10 @@ def test_lines_are_counted_as_editors_count_them(breaker: str) -> None:
     # found by test_random_yaml_punctuation: PyYAML also breaks lines at NEL, U+2028,
     # U+2029 and a lone CR, so its line numbers pointed below the line meant
     summary = "summary: pores of a polished section"
-    text = VALID.replace(summary, f'summary: "pores{breaker}of a section"') + "  bad:\n    value: x\n    max: 1\n"
+    text = (
+        VALID.replace(summary, f'summary: "pores{breaker}of a section"')
+        + "  bad:\n    value: x\n    max: 1\n"
+    )
     with pytest.raises(RecipeError) as err:
         parse_recipe(text.encode(), "fuzz.yaml")
     rows = text.split("\n")
@@ -124,11 +127,62 @@ def test_lines_are_counted_as_editors_count_them(breaker: str) -> None:
 # ---------------------------------------------------------------- raw input
 
 YAML_PIECES = [
-    ":", " ", "  ", "\n", "\t", "-", "- ", "[", "]", "{", "}", ",", "&a", "*a", "!", "!!",
-    "!!python/object:os.system", "|", ">", "'", '"', "#", "%YAML 1.2\n", "---\n", "...\n",
-    "? ", "@", "`", "\\", "\x00", "\x85", "\ufeff", "\u2028", "é", "µm", "no", "010", "1e3",
-    "12:30", ".nan", ".inf", "~", "null", "true", "format", "lotproof/1", "steps", "apply",
-    "to", "limits", "value", "max", "radius", "10 um", "1e999 um", "px",
+    ":",
+    " ",
+    "  ",
+    "\n",
+    "\t",
+    "-",
+    "- ",
+    "[",
+    "]",
+    "{",
+    "}",
+    ",",
+    "&a",
+    "*a",
+    "!",
+    "!!",
+    "!!python/object:os.system",
+    "|",
+    ">",
+    "'",
+    '"',
+    "#",
+    "%YAML 1.2\n",
+    "---\n",
+    "...\n",
+    "? ",
+    "@",
+    "`",
+    "\\",
+    "\x00",
+    "\x85",
+    "\ufeff",
+    "\u2028",
+    "é",
+    "µm",
+    "no",
+    "010",
+    "1e3",
+    "12:30",
+    ".nan",
+    ".inf",
+    "~",
+    "null",
+    "true",
+    "format",
+    "lotproof/1",
+    "steps",
+    "apply",
+    "to",
+    "limits",
+    "value",
+    "max",
+    "radius",
+    "10 um",
+    "1e999 um",
+    "px",
 ]
 
 
@@ -152,12 +206,45 @@ scalars = (
     | st.integers(min_value=-(2**70), max_value=2**70)
     | st.floats(allow_nan=True, allow_infinity=True)
     | st.text(max_size=12)
-    | st.sampled_from(["10 um", "3 px", "-1 um", "0 px", "20 um2", "stats.count", "*.tif",
-                       "../*.tif", "/etc/passwd", "otsu", "lotproof/1", "from-image", "lot-mean"])
+    | st.sampled_from(
+        [
+            "10 um",
+            "3 px",
+            "-1 um",
+            "0 px",
+            "20 um2",
+            "stats.count",
+            "*.tif",
+            "../*.tif",
+            "/etc/passwd",
+            "otsu",
+            "lotproof/1",
+            "from-image",
+            "lot-mean",
+        ]
+    )
 )
 keys = st.text(max_size=10) | st.sampled_from(
-    ["format", "name", "revision", "pixel_size", "inputs", "steps", "limits", "apply", "to",
-     "keep", "radius", "method", "value", "max", "min", "range", "over", "features"]
+    [
+        "format",
+        "name",
+        "revision",
+        "pixel_size",
+        "inputs",
+        "steps",
+        "limits",
+        "apply",
+        "to",
+        "keep",
+        "radius",
+        "method",
+        "value",
+        "max",
+        "min",
+        "range",
+        "over",
+        "features",
+    ]
 )
 documents = st.recursive(
     scalars,
@@ -200,8 +287,13 @@ PATHS = [p for p in _paths(BASE_DATA) if p]
 
 
 @FUZZ
-@given(st.lists(st.tuples(st.sampled_from(PATHS), st.sampled_from(["replace", "delete"]), documents),
-                min_size=1, max_size=4))
+@given(
+    st.lists(
+        st.tuples(st.sampled_from(PATHS), st.sampled_from(["replace", "delete"]), documents),
+        min_size=1,
+        max_size=4,
+    )
+)
 def test_structural_mutations(edits: list[tuple[tuple[Any, ...], str, Any]]) -> None:
     data = copy.deepcopy(BASE_DATA)
     for path, how, value in edits:
@@ -240,8 +332,10 @@ def test_text_mutations(edits: list[tuple[int, int, str]]) -> None:
 
 
 @FUZZ
-@given(st.lists(st.integers(min_value=0, max_value=VALID.count("\n") - 1), min_size=1, max_size=6),
-       st.sampled_from(["drop", "duplicate", "indent", "dedent"]))
+@given(
+    st.lists(st.integers(min_value=0, max_value=VALID.count("\n") - 1), min_size=1, max_size=6),
+    st.sampled_from(["drop", "duplicate", "indent", "dedent"]),
+)
 def test_line_mutations(lines: list[int], how: str) -> None:
     rows = VALID.splitlines(keepends=True)
     for n in sorted(set(lines), reverse=True):

@@ -189,7 +189,7 @@ def test_nested_sieves_equal_plain_openings(mask, footprint) -> None:
 
     out = spectrum(mask, 4.0, footprint=footprint)
     removed = np.cumsum(column(out, "area_removed"))
-    for r, gone in zip([1.0, 2.0, 3.0, 4.0], removed):
+    for r, gone in zip([1.0, 2.0, 3.0, 4.0], removed, strict=False):
         fp = _footprint(footprint, r, [n - 1 for n in mask.shape])
         opened = _morph.dilate(_morph.erode(mask, fp), fp)
         assert int(mask.sum()) - int(opened.sum()) == gone

@@ -22,7 +22,11 @@ import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
 #: where each part of the import package lives in the repository
-FOLDERS = {"lotproof": ROOT / "lotproof", "lotproof.runner": ROOT / "runner", "lotproof.steps": ROOT / "steps"}
+FOLDERS = {
+    "lotproof": ROOT / "lotproof",
+    "lotproof.runner": ROOT / "runner",
+    "lotproof.steps": ROOT / "steps",
+}
 #: runner sub-packages in the order data flows; a module may import only from its own rank or lower
 LAYERS = ("recipe", "evaluate", "lot", "record", "show", "jobs", "cli")
 
@@ -103,7 +107,9 @@ def test_imports_go_one_way() -> None:
     for name, path in MODULES.items():
         for target, _, line in _imports(name, path):
             if _rank(target) > _rank(name):
-                wrong.append(f"{path.relative_to(ROOT)}:{line}: {name} imports {target}, a later stage")
+                wrong.append(
+                    f"{path.relative_to(ROOT)}:{line}: {name} imports {target}, a later stage"
+                )
     assert wrong == []
 
 
@@ -135,8 +141,14 @@ def test_the_checks_see_a_cycle_and_a_private_import(tmp_path: Path) -> None:
     assert [c for c in nx.simple_cycles(graph) if len(c) > 1]
     path = tmp_path / "m.py"
     path.write_text("from lotproof.runner.record.ledger import _private\n", encoding="utf-8")
-    assert _imports("lotproof.runner.jobs.m", path) == [("lotproof.runner.record.ledger", "_private", 1)]
-    assert _rank("lotproof.runner.cli.main") > _rank("lotproof.runner.recipe.model") > _rank("lotproof.steps")
+    assert _imports("lotproof.runner.jobs.m", path) == [
+        ("lotproof.runner.record.ledger", "_private", 1)
+    ]
+    assert (
+        _rank("lotproof.runner.cli.main")
+        > _rank("lotproof.runner.recipe.model")
+        > _rank("lotproof.steps")
+    )
 
 
 def test_only_the_lotproof_package_is_importable_outside_the_tree(tmp_path: Path) -> None:
@@ -146,10 +158,19 @@ def test_only_the_lotproof_package_is_importable_outside_the_tree(tmp_path: Path
         "print(lotproof.load_recipe.__module__, lotproof.run_lot.__module__)\n"
         "print(importlib.util.find_spec('runner'), importlib.util.find_spec('steps'))\n"
     )
-    done = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True,
-                          check=True, env={"PATH": "/usr/bin:/bin", "PYTHONNOUSERSITE": "1"})
+    done = subprocess.run(
+        [sys.executable, "-c", code],
+        cwd=tmp_path,
+        capture_output=True,
+        text=True,
+        check=True,
+        env={"PATH": "/usr/bin:/bin", "PYTHONNOUSERSITE": "1"},
+    )
     assert done.stdout.split() == [
-        "lotproof.runner.recipe.load", "lotproof.runner.jobs.run", "None", "None"
+        "lotproof.runner.recipe.load",
+        "lotproof.runner.jobs.run",
+        "None",
+        "None",
     ]
 
 

@@ -101,23 +101,42 @@ def make_record(tmp_path: Path, spots: tuple[int, ...] = (1, 2), finish: bool = 
             time_utc="2026-12-01T21:45:00Z",
         )
         recipe = summary.recipe
-        ledger.append("recipe", path="recipe.yaml", sha256=recipe.sha256, name=recipe.name,
-                      revision=recipe.revision, git=None)
+        ledger.append(
+            "recipe",
+            path="recipe.yaml",
+            sha256=recipe.sha256,
+            name=recipe.name,
+            revision=recipe.revision,
+            git=None,
+        )
         for result in summary.results:
             for entry in result.inputs:
-                ledger.append("input", image=result.id, **{k: v for k, v in entry.items()
-                                                           if k != "color"})
+                ledger.append(
+                    "input", image=result.id, **{k: v for k, v in entry.items() if k != "color"}
+                )
             for record in result.steps:
                 ledger.append(
-                    "step", image=result.id, step=record.step, kind=record.kind,
-                    version=record.version, key=_sha(f"key {result.id} {record.step}".encode()),
+                    "step",
+                    image=result.id,
+                    step=record.step,
+                    kind=record.kind,
+                    version=record.version,
+                    key=_sha(f"key {result.id} {record.step}".encode()),
                     checksum=_sha(f"data {result.id} {record.step}".encode()),
-                    cache="computed", seconds=0.001,
+                    cache="computed",
+                    seconds=0.001,
                 )
             ledger.append("image", image=result.id, status=result.status, reason=result.reason)
         for name, lv in summary.verdicts.limits.items():
-            ledger.append("verdict", limit=name, value=lv.value, unit=lv.unit, over=lv.over,
-                          bound=lv.bound_text(), verdict=lv.verdict)
+            ledger.append(
+                "verdict",
+                limit=name,
+                value=lv.value,
+                unit=lv.unit,
+                over=lv.over,
+                bound=lv.bound_text(),
+                verdict=lv.verdict,
+            )
         ledger.append("lot-verdict", verdict=summary.verdicts.lot)
         if not finish:
             return run
@@ -125,8 +144,9 @@ def make_record(tmp_path: Path, spots: tuple[int, ...] = (1, 2), finish: bool = 
             data = (run / name).read_bytes()
             ledger.append("output", path=name, sha256=_sha(data), size=len(data))
         sums = write_sha256sums(run, list(summary.files))
-        ledger.append("output", path=SUMS_FILE, sha256=_sha(sums.read_bytes()),
-                      size=sums.stat().st_size)
+        ledger.append(
+            "output", path=SUMS_FILE, sha256=_sha(sums.read_bytes()), size=sums.stat().st_size
+        )
         ledger.append("run-end", time_utc="2026-12-01T21:45:01Z", exit_code=summary.exit_code)
     return run
 
@@ -150,15 +170,23 @@ def _copy(run: Path, dest: Path) -> Path:
 def test_genesis_is_the_hash_of_its_phrase() -> None:
     # source: sha256 of b"lotproof ledger v1", computed with coreutils sha256sum
     # (printf 'lotproof ledger v1' | sha256sum)
-    expected = subprocess.run(
-        ["sha256sum"], input=b"lotproof ledger v1", capture_output=True, check=True
-    ).stdout.split()[0].decode()
-    assert GENESIS == expected
+    expected = (
+        subprocess.run(["sha256sum"], input=b"lotproof ledger v1", capture_output=True, check=True)
+        .stdout.split()[0]
+        .decode()
+    )
+    assert expected == GENESIS
 
 
 def test_canonical_maps_nan_and_infinity_to_null_and_sorts_keys() -> None:
-    assert canonical({"b": float("nan"), "a": [1.0, float("inf"), -0.0]}) == b'{"a":[1,null,0],"b":null}'
-    assert canonical({"x": np.float64(0.5), "n": np.int32(3), "t": (1, 2)}) == b'{"n":3,"t":[1,2],"x":0.5}'
+    assert (
+        canonical({"b": float("nan"), "a": [1.0, float("inf"), -0.0]})
+        == b'{"a":[1,null,0],"b":null}'
+    )
+    assert (
+        canonical({"x": np.float64(0.5), "n": np.int32(3), "t": (1, 2)})
+        == b'{"n":3,"t":[1,2],"x":0.5}'
+    )
 
 
 def test_canonical_refuses_what_json_does_not_have() -> None:
@@ -177,7 +205,10 @@ def test_writer_chains_lines_from_genesis(tmp_path: Path) -> None:
         assert ledger.seal == second and ledger.count == 2
     lines = path.read_bytes().split(b"\n")
     assert lines[-1] == b""
-    assert lines[0] == b'{"prev":"' + GENESIS.encode() + b'","seq":1,"time_utc":"t0","type":"run-start"}'
+    assert (
+        lines[0]
+        == b'{"prev":"' + GENESIS.encode() + b'","seq":1,"time_utc":"t0","type":"run-start"}'
+    )
     assert line_hash(lines[0]) == first
     assert json.loads(lines[1])["prev"] == first
     assert line_hash(lines[1]) == second
@@ -296,7 +327,9 @@ def test_truncated_ledger_is_unfinished_not_intact(record: Path, tmp_path: Path)
     assert report.problems[0] == (
         f"{LEDGER_FILE}: the last event (line {first_output}) is not run-end; the run never finished"
     )
-    assert "images.csv: not recorded in the ledger (written after its last event)" in report.problems
+    assert (
+        "images.csv: not recorded in the ledger (written after its last event)" in report.problems
+    )
     assert report.exit_code == EXIT_INTEGRITY
     with pytest.raises(LedgerError, match="never finished"):
         RunFolder(run).events()
@@ -329,7 +362,9 @@ def test_events_after_run_end_are_altered(tmp_path: Path) -> None:
     with LedgerWriter(tmp_path / LEDGER_FILE) as ledger:
         ledger.append("run-end", time_utc="t", exit_code=0)
         ledger.append("run-end", time_utc="t", exit_code=0)
-    assert verify_run(tmp_path).problems == [f"{LEDGER_FILE} line 1: events follow the run-end event"]
+    assert verify_run(tmp_path).problems == [
+        f"{LEDGER_FILE} line 1: events follow the run-end event"
+    ]
 
 
 def test_non_canonical_line_is_altered(tmp_path: Path) -> None:
@@ -345,8 +380,9 @@ def test_output_path_that_leaves_the_run_folder(tmp_path: Path) -> None:
         ledger.append("output", path="../outside", sha256=_sha(b""), size=0)
         ledger.append("run-end", time_utc="t", exit_code=0)
     problems = verify_run(tmp_path).problems
-    assert problems == [f"{LEDGER_FILE} line 1: output path '../outside' is not a plain path "
-                        "inside the run folder"]
+    assert problems == [
+        f"{LEDGER_FILE} line 1: output path '../outside' is not a plain path inside the run folder"
+    ]
 
 
 def _flip(data: bytes, position: int, bit: int) -> bytes:
@@ -355,9 +391,13 @@ def _flip(data: bytes, position: int, bit: int) -> bytes:
     return bytes(out)
 
 
-@settings(max_examples=400, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(
+    max_examples=400, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
 @given(st.data())
-def test_every_flip_in_the_ledger_before_its_last_line_is_detected(record: Path, data: st.DataObject) -> None:
+def test_every_flip_in_the_ledger_before_its_last_line_is_detected(
+    record: Path, data: st.DataObject
+) -> None:
     ledger = record / LEDGER_FILE
     original = ledger.read_bytes()
     last_start = original.rstrip(b"\n").rfind(b"\n") + 1
@@ -378,9 +418,13 @@ def test_every_flip_in_the_ledger_before_its_last_line_is_detected(record: Path,
     assert named in (line, line + 1), (position, first)
 
 
-@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(
+    max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
 @given(st.data())
-def test_every_flip_in_the_last_line_is_caught_by_the_seal(record: Path, data: st.DataObject) -> None:
+def test_every_flip_in_the_last_line_is_caught_by_the_seal(
+    record: Path, data: st.DataObject
+) -> None:
     ledger = record / LEDGER_FILE
     original = ledger.read_bytes()
     seal = line_hash(original.rstrip(b"\n").rsplit(b"\n", 1)[-1])
@@ -399,7 +443,9 @@ def _outputs(record: Path) -> list[str]:
     return [e["path"] for e in RunFolder(record).events() if e["type"] == "output"]
 
 
-@settings(max_examples=400, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(
+    max_examples=400, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
 @given(st.data())
 def test_every_flip_in_an_output_file_is_detected(record: Path, data: st.DataObject) -> None:
     name = data.draw(st.sampled_from(_outputs(record)), label="file")
@@ -448,7 +494,9 @@ def test_keygen_refuses_a_run_folder(record: Path, tmp_path: Path) -> None:
     assert not (tmp_path / "lab.pub").exists()
 
 
-def test_signed_record_verifies_with_its_key(record: Path, tmp_path: Path, keys: tuple[Path, Path]) -> None:
+def test_signed_record_verifies_with_its_key(
+    record: Path, tmp_path: Path, keys: tuple[Path, Path]
+) -> None:
     private, public = keys
     run = _copy(record, tmp_path)
     seal = verify_run(run).seal
@@ -485,7 +533,9 @@ def test_a_key_without_a_signature_fails(record: Path, keys: tuple[Path, Path]) 
     assert (report.status, report.signature) == ("altered", "absent")
 
 
-def test_private_key_inside_the_run_folder_is_refused(record: Path, tmp_path: Path, keys: tuple[Path, Path]) -> None:
+def test_private_key_inside_the_run_folder_is_refused(
+    record: Path, tmp_path: Path, keys: tuple[Path, Path]
+) -> None:
     run = _copy(record, tmp_path)
     inside = run / "lab.key"
     inside.write_bytes(keys[0].read_bytes())
@@ -506,9 +556,21 @@ def test_sign_seal_refuses_what_is_not_a_seal(keys: tuple[Path, Path]) -> None:
 
 def run_git(repo: Path, *args: str) -> str:
     done = subprocess.run(
-        ["git", "-C", str(repo), "-c", "user.name=t", "-c", "user.email=t@t",
-         "-c", "commit.gpgsign=false", *args],
-        capture_output=True, check=True, text=True,
+        [
+            "git",
+            "-C",
+            str(repo),
+            "-c",
+            "user.name=t",
+            "-c",
+            "user.email=t@t",
+            "-c",
+            "commit.gpgsign=false",
+            *args,
+        ],
+        capture_output=True,
+        check=True,
+        text=True,
     )
     return done.stdout.strip()
 
@@ -532,7 +594,11 @@ def test_git_info_clean_modified_untracked(repo: Path, tmp_path: Path) -> None:
     assert git_info(recipe) == {"commit": head, "path_in_repo": "recipes/a.yaml", "modified": True}
     untracked = repo / "recipes" / "b.yaml"
     untracked.write_text(RECIPE)
-    assert git_info(untracked) == {"commit": head, "path_in_repo": "recipes/b.yaml", "modified": True}
+    assert git_info(untracked) == {
+        "commit": head,
+        "path_in_repo": "recipes/b.yaml",
+        "modified": True,
+    }
     outside = tmp_path / "loose.yaml"
     outside.write_text(RECIPE)
     assert git_info(outside) is None
@@ -541,13 +607,19 @@ def test_git_info_clean_modified_untracked(repo: Path, tmp_path: Path) -> None:
 def test_git_info_in_a_repository_without_commits(tmp_path: Path) -> None:
     run_git(tmp_path, "init", "-q")
     (tmp_path / "r.yaml").write_text(RECIPE)
-    assert git_info(tmp_path / "r.yaml") == {"commit": None, "path_in_repo": "r.yaml", "modified": True}
+    assert git_info(tmp_path / "r.yaml") == {
+        "commit": None,
+        "path_in_repo": "r.yaml",
+        "modified": True,
+    }
 
 
 # ---------------------------------------------------------------- CLI
 
 
-def test_cli_verify_exit_codes_and_json(record: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_cli_verify_exit_codes_and_json(
+    record: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     with pytest.raises(SystemExit) as done:
         main(["verify", str(record), "--json"])
     assert done.value.code == EXIT_OK

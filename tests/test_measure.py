@@ -223,12 +223,8 @@ def test_label_output() -> None:
     eight = label(LabelParams(), mask, spacing=(1.0, 1.0))
     four = label(LabelParams(connectivity=4), mask, spacing=(1.0, 1.0))
     assert eight.dtype == np.int32 and four.dtype == np.int32
-    np.testing.assert_array_equal(
-        eight, [[1, 0, 0, 2], [0, 1, 0, 2], [0, 0, 0, 0], [3, 3, 0, 4]]
-    )
-    np.testing.assert_array_equal(
-        four, [[1, 0, 0, 2], [0, 3, 0, 2], [0, 0, 0, 0], [4, 4, 0, 5]]
-    )
+    np.testing.assert_array_equal(eight, [[1, 0, 0, 2], [0, 1, 0, 2], [0, 0, 0, 0], [3, 3, 0, 4]])
+    np.testing.assert_array_equal(four, [[1, 0, 0, 2], [0, 3, 0, 2], [0, 0, 0, 0], [4, 4, 0, 5]])
     volume = np.zeros((2, 2, 2), dtype=bool)
     volume[0, 0, 0] = volume[1, 1, 1] = True
     assert label(LabelParams(), volume, spacing=(1.0,) * 3).max() == 1  # 26 by default
@@ -250,7 +246,7 @@ def test_errors() -> None:
         _run(mask, spacing=(0.0, 0.0))
     with pytest.raises(ValueError, match="2D images and 3D volumes"):
         _run(np.ones((2, 2, 3, 3), dtype=bool), spacing=(1.0,) * 4)
-    with pytest.raises(ValueError, match="bool.*integer"):
+    with pytest.raises(ValueError, match=r"bool.*integer"):
         _run(np.ones((3, 3), dtype=np.float32))
     with pytest.raises(ValueError, match=">= 0"):
         _run(np.array([[0, -1]], dtype=np.int32))

@@ -56,7 +56,7 @@ def _ids(draw, max_side: int = 24):
         # overlapping rectangles and disks: solid objects with holes cut by later ones
         ids = np.zeros(shape, dtype=np.int64)
         yy, xx = np.mgrid[0 : shape[0], 0 : shape[1]]
-        for k in range(draw(st.integers(1, 8))):
+        for _k in range(draw(st.integers(1, 8))):
             value = draw(st.integers(0, 9))
             r0, c0 = draw(st.integers(-3, shape[0])), draw(st.integers(-3, shape[1]))
             r1, c1 = draw(st.integers(0, 15)), draw(st.integers(0, 15))
@@ -203,7 +203,7 @@ def test_bad_ids_are_refused() -> None:
         lambda: mk.feret_max_2d(ids, np.zeros((2, 4), dtype=np.int64)),
         lambda: mk.pixel_moments_2d(-ids, 3),
     ):
-        with pytest.raises(ValueError, match="ids must lie in 0..[23]"):
+        with pytest.raises(ValueError, match=r"ids must lie in 0\.\.[23]"):
             call()
     boxes = mk.bounding_boxes(ids, 3)
     loose = boxes.copy()

@@ -174,7 +174,11 @@ def test_registered_kinds():
         kind = get_kind(name)
         assert kind.version == "1"
         assert kind.ndims == frozenset({2, 3})
-        assert kind.libraries == ("numpy", "scipy", "numba")  # numba compiles the kernels: its version is in every key
+        assert kind.libraries == (
+            "numpy",
+            "scipy",
+            "numba",
+        )  # numba compiles the kernels: its version is in every key
         assert kind.summary
     for name in ("erode", "widen", "open", "close", "outline"):
         assert get_kind(name).takes == (frozenset({"image", "mask"}),)

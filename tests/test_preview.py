@@ -124,7 +124,7 @@ def test_mask_and_labels_tiles_show_the_data(case: tuple[Path, Path], tmp_path: 
     assert np.array_equal(mask_px[..., 0] == 255, expected_mask)
     assert set(np.unique(mask_px)) == {0, 255}
     # source: scipy.ndimage.label with the full 3x3 structure (8-connectivity)
-    labels, n = ndimage.label(_image() > 100, structure=np.ones((3, 3), int))
+    _labels, n = ndimage.label(_image() > 100, structure=np.ones((3, 3), int))
     assert n == 2
     label_px = _crop(out, tiles["objects"]["picture"])
     colours = {tuple(c) for c in label_px.reshape(-1, 3)} - {(0, 0, 0)}
@@ -134,7 +134,9 @@ def test_mask_and_labels_tiles_show_the_data(case: tuple[Path, Path], tmp_path: 
     assert (np.all(overlay_px == (255, 200, 0), axis=-1)).any()
 
 
-def test_steps_option_restricts_the_tiles_and_checks_names(case: tuple[Path, Path], tmp_path: Path) -> None:
+def test_steps_option_restricts_the_tiles_and_checks_names(
+    case: tuple[Path, Path], tmp_path: Path
+) -> None:
     recipe, image = case
     sheet = make_preview(recipe, image, steps=["stats", "spots"])
     assert [t["name"] for t in sheet.tiles] == ["section", "spots", "stats"]
@@ -143,7 +145,17 @@ def test_steps_option_restricts_the_tiles_and_checks_names(case: tuple[Path, Pat
     with pytest.raises(PreviewError, match="not run"):
         make_preview(recipe, image, steps=["spare"])
     with pytest.raises(SystemExit) as exit_info:
-        main(["preview", str(recipe), str(image), "--steps", "claen", "--out", str(tmp_path / "s.png")])
+        main(
+            [
+                "preview",
+                str(recipe),
+                str(image),
+                "--steps",
+                "claen",
+                "--out",
+                str(tmp_path / "s.png"),
+            ]
+        )
     assert exit_info.value.code == 2
     with pytest.raises(SystemExit) as exit_info:
         main(["preview", str(recipe), str(image), "--out", str(tmp_path / "s.jpg")])

@@ -17,8 +17,14 @@ ROOT = Path(__file__).resolve().parents[1]
 def test_the_readme_table_matches_the_test_suite() -> None:
     # run in its own process: collecting tests inside a running session would re-import them
     env = {k: v for k, v in os.environ.items() if k != "LOTPROOF_FUZZ_EXAMPLES"}
-    done = subprocess.run([sys.executable, str(ROOT / "tests" / "reliability_table.py")], cwd=ROOT,
-                          capture_output=True, timeout=300, check=False, env=env)
+    done = subprocess.run(
+        [sys.executable, str(ROOT / "tests" / "reliability_table.py")],
+        cwd=ROOT,
+        capture_output=True,
+        timeout=300,
+        check=False,
+        env=env,
+    )
     assert done.returncode == 0, done.stderr.decode()
     generated = done.stdout.decode("utf-8")
     written = readme_section((ROOT / "README.md").read_text(encoding="utf-8"))

@@ -16,7 +16,7 @@ import tifffile
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-import lotproof.runner.cli.show  # noqa: F401  registers report and preview on the cli group
+import lotproof.runner.cli.show
 from lotproof import run_lot
 from lotproof.runner.cli.main import main
 from lotproof.runner.errors import RunFolderError
@@ -108,9 +108,9 @@ class _Collect(HTMLParser):
         for key in ("src", "href", "action", "poster", "data"):
             if key in a:
                 self.urls.append(a[key])
-        if tag == "tr" and ("data-limit" in a or "data-image" in a):
-            self._stack.append((tag, a, []))
-        elif a.get("id") == "lot-verdict":
+        if (tag == "tr" and ("data-limit" in a or "data-image" in a)) or a.get(
+            "id"
+        ) == "lot-verdict":
             self._stack.append((tag, a, []))
         if tag == "td" and self._stack:
             self._stack[-1][2].append("\x1f")  # cell separator
@@ -141,7 +141,9 @@ def _parse(html: bytes) -> _Collect:
     return parser
 
 
-def test_every_limit_image_and_verdict_is_as_verdicts_json_says(finished_run: Path, tmp_path: Path) -> None:
+def test_every_limit_image_and_verdict_is_as_verdicts_json_says(
+    finished_run: Path, tmp_path: Path
+) -> None:
     out, status = rebuild_report(finished_run, tmp_path / "r.html")
     assert status == "intact"
     page = _parse(out.read_bytes())
@@ -202,7 +204,10 @@ def test_no_external_reference(finished_run: Path) -> None:
     html = build_report(finished_run)
     page = _parse(html)
     assert page.urls, "the report embeds its pictures"
-    assert all(url.startswith(("data:image/png;base64,", "data:image/svg+xml;base64,")) for url in page.urls)
+    assert all(
+        url.startswith(("data:image/png;base64,", "data:image/svg+xml;base64,"))
+        for url in page.urls
+    )
     assert not page.tags & {"link", "script", "iframe", "object", "embed", "base"}
     # base64 may hold '//', so look at everything except the data URIs
     rest = re.sub(rb"data:[a-z/+]+;base64,[A-Za-z0-9+/=]+", b"", html)
@@ -213,7 +218,7 @@ def test_no_external_reference(finished_run: Path) -> None:
         if url.startswith("data:image/svg+xml"):
             svg = base64.b64decode(url.split(",", 1)[1])
             ET.fromstring(svg)  # well-formed
-            assert b"xlink:href=\"http" not in svg and b"href=\"http" not in svg
+            assert b'xlink:href="http' not in svg and b'href="http' not in svg
             assert b"<dc:date>" not in svg
 
 
@@ -249,7 +254,9 @@ def test_write_report_works_on_an_unfinished_record(finished_run: Path, tmp_path
     assert (run / REPORT_FILE).read_bytes() == written
 
 
-def test_rebuilt_report_has_the_seal_and_goes_beside_the_run(finished_run: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_rebuilt_report_has_the_seal_and_goes_beside_the_run(
+    finished_run: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     before = {p.name: p.read_bytes() for p in finished_run.iterdir() if p.is_file()}
     with pytest.raises(SystemExit) as exit_info:
         main(["report", str(finished_run)])
@@ -271,7 +278,9 @@ def test_report_refuses_to_write_into_the_run_folder(finished_run: Path) -> None
     assert not (finished_run / "again.html").exists()
 
 
-def test_report_of_an_altered_record_says_so_and_exits_4(finished_run: Path, tmp_path: Path) -> None:
+def test_report_of_an_altered_record_says_so_and_exits_4(
+    finished_run: Path, tmp_path: Path
+) -> None:
     run = tmp_path / finished_run.name
     shutil.copytree(finished_run, run)
     images = run / "images.csv"
@@ -290,7 +299,10 @@ def test_not_a_run_folder_is_exit_2(tmp_path: Path) -> None:
 
 
 def test_pdf_without_chromium_is_exit_3_with_a_clear_message(
-    finished_run: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+    finished_run: Path,
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
 ) -> None:
     monkeypatch.setattr(lotproof.runner.cli.show, "find_chromium", lambda: None)
     out = tmp_path / "r.pdf"

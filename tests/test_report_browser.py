@@ -51,7 +51,9 @@ def browser() -> str:
     found = find_chromium()
     if found is None:
         if os.environ.get("CI"):
-            pytest.fail("chromium is not installed; .ci/run installs Debian's chromium package in CI")
+            pytest.fail(
+                "chromium is not installed; .ci/run installs Debian's chromium package in CI"
+            )
         pytest.skip("chromium is not installed (apt-get install chromium)")
     return found
 
@@ -79,10 +81,16 @@ def test_screenshot_is_not_blank(browser: str, report_file: Path, tmp_path: Path
     shot = tmp_path / "shot.png"
     with tempfile.TemporaryDirectory() as profile:
         command = chromium_command(
-            browser, Path(profile), "--hide-scrollbars", "--window-size=1000,1400",
-            f"--screenshot={shot}", report_file.resolve().as_uri(),
+            browser,
+            Path(profile),
+            "--hide-scrollbars",
+            "--window-size=1000,1400",
+            f"--screenshot={shot}",
+            report_file.resolve().as_uri(),
         )
-        done = subprocess.run(command, capture_output=True, timeout=120, stdin=subprocess.DEVNULL, check=False)
+        done = subprocess.run(
+            command, capture_output=True, timeout=120, stdin=subprocess.DEVNULL, check=False
+        )
     assert done.returncode == 0, done.stderr.decode(errors="replace")[-2000:]
     with Image.open(shot) as im:
         assert im.size == (1000, 1400)
@@ -92,15 +100,22 @@ def test_screenshot_is_not_blank(browser: str, report_file: Path, tmp_path: Path
     assert (gray < 80).mean() > 0.005
     assert (gray > 200).mean() > 0.5
     # the lot verdict box stands in the top part of the page: a thick dark frame near the top
-    top = gray[: 700]
+    top = gray[:700]
     assert ((top < 60).sum(axis=1) > 500).any()
 
 
 def test_pdf_is_printed(browser: str, report_file: Path, tmp_path: Path) -> None:
     out = tmp_path / "report.pdf"
     with pytest.raises(SystemExit) as exit_info:
-        main(["report", str(report_file.parent / report_file.name.removesuffix("-report.html")),
-              "--pdf", "--out", str(out)])
+        main(
+            [
+                "report",
+                str(report_file.parent / report_file.name.removesuffix("-report.html")),
+                "--pdf",
+                "--out",
+                str(out),
+            ]
+        )
     assert exit_info.value.code == 0
     data = out.read_bytes()
     assert data.startswith(b"%PDF-")

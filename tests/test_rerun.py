@@ -75,7 +75,11 @@ def test_a_run_writes_a_sealed_ledger(recorded: tuple[Path, Path]) -> None:
     assert types[:2] == ["run-start", "recipe"] and types[-1] == "run-end"
     assert types.count("image") == 4 and types.count("input") == 3 and types.count("step") == 9
     assert {e["path"] for e in events if e["type"] == "output"} >= {
-        "images.csv", "objects.csv", "verdicts.json", "recipe.yaml", "SHA256SUMS"
+        "images.csv",
+        "objects.csv",
+        "verdicts.json",
+        "recipe.yaml",
+        "SHA256SUMS",
     }
     start = events[0]
     assert start["tool"]["name"] == "lotproof" and "numpy" in start["libraries"]
@@ -111,8 +115,9 @@ def test_rerun_finds_moved_inputs_by_checksum(recorded: tuple[Path, Path], tmp_p
     assert not [d for d in report.differences if "checksum" in d.what]
 
 
-def test_rerun_refuses_a_replaced_input(recorded: tuple[Path, Path], tmp_path: Path,
-                                        capsys: pytest.CaptureFixture[str]) -> None:
+def test_rerun_refuses_a_replaced_input(
+    recorded: tuple[Path, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     run_dir, lot = recorded
     tifffile.imwrite(lot / "s1.tif", _image(99))
     with pytest.raises(SystemExit) as exit_info:
@@ -133,7 +138,9 @@ def test_rerun_refuses_an_altered_record(recorded: tuple[Path, Path], tmp_path: 
 
 
 def test_rerun_reports_the_first_difference_per_image(
-    recorded: tuple[Path, Path], tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+    recorded: tuple[Path, Path],
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
     capsys: pytest.CaptureFixture[str],
 ) -> None:
     run_dir, _ = recorded
@@ -201,8 +208,12 @@ def test_interrupted_run_is_unfinished(tmp_path: Path, monkeypatch: pytest.Monke
 
 def test_rerun_of_the_demo_run_is_identical(tmp_path: Path) -> None:
     root = Path(__file__).resolve().parent.parent
-    recorded = run_lot(root / "recipes" / "filter-disc-porosity.yaml", root / "demo_run" / "FD-2611",
-                       tmp_path / "runs", jobs=2)
+    recorded = run_lot(
+        root / "recipes" / "filter-disc-porosity.yaml",
+        root / "demo_run" / "FD-2611",
+        tmp_path / "runs",
+        jobs=2,
+    )
     report = rerun(recorded.run_dir, out=tmp_path / "reruns")
     assert report.identical, report.first_per_image()
     # every (image, step) checksum was compared: 8 images x 4 steps, plus values and verdicts

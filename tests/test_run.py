@@ -84,7 +84,14 @@ def test_all_pass_writes_the_run_folder(tmp_path: Path) -> None:
     assert summary.exit_code == EXIT_OK
     run = summary.run_dir
     assert run.name.endswith("-spot-test-r2")
-    for name in ("recipe.yaml", "resolved.json", "images.csv", "objects.csv", "verdicts.json", "inputs.json"):
+    for name in (
+        "recipe.yaml",
+        "resolved.json",
+        "images.csv",
+        "objects.csv",
+        "verdicts.json",
+        "inputs.json",
+    ):
         assert (run / name).is_file(), name
     assert (run / "recipe.yaml").read_bytes() == (tmp_path / "recipe.yaml").read_bytes()
     images = (run / "images.csv").read_text().splitlines()
@@ -205,7 +212,10 @@ def test_from_image_needs_a_calibration(tmp_path: Path) -> None:
     lot.mkdir()
     tifffile.imwrite(lot / "plain.tif", _image(1))
     tifffile.imwrite(
-        lot / "calibrated.tif", _image(1), resolution=(1e4 / 0.25, 1e4 / 0.25), resolutionunit="CENTIMETER"
+        lot / "calibrated.tif",
+        _image(1),
+        resolution=(1e4 / 0.25, 1e4 / 0.25),
+        resolutionunit="CENTIMETER",
     )
     text = RECIPE.replace("pixel_size: 0.5 um", "pixel_size: from-image")
     summary = run_lot(_recipe(tmp_path, text=text), lot, tmp_path / "runs")

@@ -122,8 +122,9 @@ def _tree(folder: Path) -> dict[str, tuple[int, int, str]]:
         "!!python/object:os.PathLike {{}}",
     ],
 )
-def test_python_tags_are_refused_and_never_constructed(tmp_path: Path, capsys: pytest.CaptureFixture[str],
-                                                       tagged: str) -> None:
+def test_python_tags_are_refused_and_never_constructed(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], tagged: str
+) -> None:
     canary = tmp_path / "constructed"
     value = tagged.format(canary=json.dumps(str(canary)))
     path = _recipe(tmp_path, RECIPE.replace("method: otsu", f"method: {value}"))
@@ -156,8 +157,12 @@ def _source_findings() -> list[str]:
                 func = node.func
                 if isinstance(func, ast.Name) and func.id in _FORBIDDEN_CALLS:
                     findings.append(f"{where}:{node.lineno}: {func.id}()")
-                if (isinstance(func, ast.Attribute) and func.attr in _UNSAFE_YAML
-                        and isinstance(func.value, ast.Name) and func.value.id == "yaml"):
+                if (
+                    isinstance(func, ast.Attribute)
+                    and func.attr in _UNSAFE_YAML
+                    and isinstance(func.value, ast.Name)
+                    and func.value.id == "yaml"
+                ):
                     findings.append(f"{where}:{node.lineno}: yaml.{func.attr}()")
                 for keyword in node.keywords:
                     if keyword.arg == "shell" and not (
@@ -165,7 +170,11 @@ def _source_findings() -> list[str]:
                     ):
                         findings.append(f"{where}:{node.lineno}: shell=")
             elif isinstance(node, (ast.Import, ast.ImportFrom)):
-                names = [a.name for a in node.names] if isinstance(node, ast.Import) else [node.module or ""]
+                names = (
+                    [a.name for a in node.names]
+                    if isinstance(node, ast.Import)
+                    else [node.module or ""]
+                )
                 for name in names:
                     if name.split(".")[0] in _FORBIDDEN_MODULES:
                         findings.append(f"{where}:{node.lineno}: import {name}")
@@ -180,42 +189,77 @@ def test_no_code_of_lotproof_evaluates_text_or_unpickles() -> None:
 @pytest.mark.parametrize(
     ("old", "new", "line", "message"),
     [
-        ("value: stats.area_fraction", "value: __import__('os').mkdir({canary})", 18,
-         "must name a step's value as STEP.NAME"),
+        (
+            "value: stats.area_fraction",
+            "value: __import__('os').mkdir({canary})",
+            18,
+            "must name a step's value as STEP.NAME",
+        ),
         ("max: 0.5", "max: \"__import__('os').mkdir({canary})\"", 19, "cannot read"),
         ("max: 0.5", "max: 1 + 1", 19, "write the bound without a unit (got '1 + 1')"),
-        ("max: 0.5", "max: \"{{0.5}}\"", 19, "cannot read"),
+        ("max: 0.5", 'max: "{{0.5}}"', 19, "cannot read"),
         ("method: otsu", "method: \"__import__('os').mkdir({canary})\"", 11, "is not one of"),
-        ("pixel_size: 0.5 um", "pixel_size: \"__import__('os').mkdir({canary}) um\"", 4,
-         "cannot read"),
+        (
+            "pixel_size: 0.5 um",
+            "pixel_size: \"__import__('os').mkdir({canary}) um\"",
+            4,
+            "cannot read",
+        ),
     ],
-    ids=["limit-value", "limit-bound", "bound-arithmetic", "bound-template", "step-option", "pixel-size"],
+    ids=[
+        "limit-value",
+        "limit-bound",
+        "bound-arithmetic",
+        "bound-template",
+        "step-option",
+        "pixel-size",
+    ],
 )
-def test_nothing_in_a_recipe_is_evaluated(tmp_path: Path, capsys: pytest.CaptureFixture[str],
-                                          old: str, new: str, line: int, message: str) -> None:
+def test_nothing_in_a_recipe_is_evaluated(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], old: str, new: str, line: int, message: str
+) -> None:
     canary = tmp_path / "evaluated"
     edited = RECIPE.replace(old, new.format(canary=json.dumps(str(canary)).replace('"', "'")))
     assert edited != RECIPE
     path = _recipe(tmp_path, edited)
     lot = _lot(tmp_path)
-    assert _exit(["run", str(path), str(lot), "--out", str(tmp_path / "runs"), "--no-cache"]) == EXIT_INVALID
+    assert (
+        _exit(["run", str(path), str(lot), "--out", str(tmp_path / "runs"), "--no-cache"])
+        == EXIT_INVALID
+    )
     err = capsys.readouterr().err
-    assert any(row.startswith(f"{path}:{line}:") and message in row for row in err.splitlines()), err
+    assert any(row.startswith(f"{path}:{line}:") and message in row for row in err.splitlines()), (
+        err
+    )
     assert not canary.exists() and not (tmp_path / "runs").exists()
 
 
 # ---------------------------------------------------------------- the lot's boundary
 
 
-@pytest.mark.parametrize("pattern", ["../*.tif", "../lot/*.tif", "sub/../../*.tif", "..\\\\*.tif",
-                                     "/etc/*", "C:/lots/*.tif", "**/../../*.tif"])
-def test_globs_that_leave_the_lot_are_recipe_errors(tmp_path: Path, capsys: pytest.CaptureFixture[str],
-                                                    pattern: str) -> None:
+@pytest.mark.parametrize(
+    "pattern",
+    [
+        "../*.tif",
+        "../lot/*.tif",
+        "sub/../../*.tif",
+        "..\\\\*.tif",
+        "/etc/*",
+        "C:/lots/*.tif",
+        "**/../../*.tif",
+    ],
+)
+def test_globs_that_leave_the_lot_are_recipe_errors(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], pattern: str
+) -> None:
     path = _recipe(tmp_path, RECIPE.replace('"*.tif"', f'"{pattern}"'))
     lot = _lot(tmp_path)
     assert _exit(["check", str(path)]) == EXIT_INVALID
     assert f"{path}:6:12: inputs.section: an input glob" in capsys.readouterr().err
-    assert _exit(["run", str(path), str(lot), "--out", str(tmp_path / "runs"), "--no-cache"]) == EXIT_INVALID
+    assert (
+        _exit(["run", str(path), str(lot), "--out", str(tmp_path / "runs"), "--no-cache"])
+        == EXIT_INVALID
+    )
     assert not (tmp_path / "runs").exists()
 
 
@@ -238,15 +282,22 @@ def test_symbolic_links_out_of_the_lot_are_refused_per_image(tmp_path: Path) -> 
     (lot / "link.tif").symlink_to(outside / "x.tif")  # a file outside
     (lot / "inner" / "up").symlink_to(outside)  # a folder outside
     (lot / "inside.tif").symlink_to(lot / "a.tif")  # inside the lot: allowed
-    recipe = _recipe(tmp_path, RECIPE.replace('"*.tif"', '"**/*.tif"').replace("keep: true", "keep: false"))
+    recipe = _recipe(
+        tmp_path, RECIPE.replace('"*.tif"', '"**/*.tif"').replace("keep: true", "keep: false")
+    )
     out = tmp_path / "runs"
-    assert _exit(["run", str(recipe), str(lot), "--out", str(out), "--no-cache", "-j", "1"]) == EXIT_BAD_INPUT
+    assert (
+        _exit(["run", str(recipe), str(lot), "--out", str(out), "--no-cache", "-j", "1"])
+        == EXIT_BAD_INPUT
+    )
     (run,) = list(out.iterdir())
     verdicts = json.loads((run / "verdicts.json").read_text())
     assert verdicts["lot_verdict"] != "pass"
     statuses = verdicts["image_verdicts"]
     refused = verdicts["incomplete_images"]
-    assert set(refused) == {"link.tif"} | ({"inner/up/x.tif"} if "inner/up/x.tif" in statuses else set())
+    assert set(refused) == {"link.tif"} | (
+        {"inner/up/x.tif"} if "inner/up/x.tif" in statuses else set()
+    )
     for reason in refused.values():
         assert "points outside the lot folder" in reason
     assert statuses["a.tif"] != "incomplete" and statuses["inside.tif"] != "incomplete"
@@ -255,10 +306,16 @@ def test_symbolic_links_out_of_the_lot_are_refused_per_image(tmp_path: Path) -> 
     assert outside_digest not in json.dumps(recorded)  # its bytes were never read
     # the folder link, named directly by a glob
     direct = _recipe(tmp_path, RECIPE.replace('"*.tif"', '"inner/up/*.tif"'))
-    assert _exit(["run", str(direct), str(lot), "--out", str(out), "--no-cache", "-j", "1"]) == EXIT_BAD_INPUT
+    assert (
+        _exit(["run", str(direct), str(lot), "--out", str(out), "--no-cache", "-j", "1"])
+        == EXIT_BAD_INPUT
+    )
     newest = max(out.iterdir())
     reasons = json.loads((newest / "verdicts.json").read_text())["incomplete_images"]
-    assert list(reasons) == ["inner/up/x.tif"] and "points outside the lot folder" in reasons["inner/up/x.tif"]
+    assert (
+        list(reasons) == ["inner/up/x.tif"]
+        and "points outside the lot folder" in reasons["inner/up/x.tif"]
+    )
 
 
 def test_run_folder_names_are_sanitised(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
@@ -281,8 +338,9 @@ def test_run_folder_names_are_sanitised(tmp_path: Path, capsys: pytest.CaptureFi
 def test_lot_files_with_odd_names_stay_inside_the_run_folder(tmp_path: Path) -> None:
     lot = _lot(tmp_path, ("we ird;$(touch x).tif", "sub dir/..b.tif"))
     out = tmp_path / "runs"
-    assert _exit(["run", str(_recipe(tmp_path)), str(lot), "--out", str(out), "--no-cache", "-j", "1"]) \
-        in (EXIT_OK, EXIT_LIMIT_FAILED)
+    assert _exit(
+        ["run", str(_recipe(tmp_path)), str(lot), "--out", str(out), "--no-cache", "-j", "1"]
+    ) in (EXIT_OK, EXIT_LIMIT_FAILED)
     (run,) = list(out.iterdir())
     for path in run.rglob("*"):
         assert path.resolve().is_relative_to(run.resolve())
@@ -300,20 +358,34 @@ def test_a_run_leaves_the_lot_exactly_as_it_was(tmp_path: Path) -> None:
     recipe = _recipe(tmp_path, RECIPE.replace('"*.tif"', '"**/*.tif"'))
     before = _tree(lot)
     for jobs in ("1", "2"):
-        code = _exit(["run", str(recipe), str(lot), "--out", str(tmp_path / "runs"),
-                      "--cache", str(tmp_path / "cache"), "-j", jobs])
+        code = _exit(
+            [
+                "run",
+                str(recipe),
+                str(lot),
+                "--out",
+                str(tmp_path / "runs"),
+                "--cache",
+                str(tmp_path / "cache"),
+                "-j",
+                jobs,
+            ]
+        )
         assert code in (EXIT_OK, EXIT_LIMIT_FAILED)
     assert _tree(lot) == before  # names, modes, modification times and bytes
 
 
 @pytest.mark.parametrize("inside", ["out", "cache"])
-def test_output_or_cache_inside_the_lot_is_refused(tmp_path: Path, capsys: pytest.CaptureFixture[str],
-                                                   inside: str) -> None:
+def test_output_or_cache_inside_the_lot_is_refused(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], inside: str
+) -> None:
     lot = _lot(tmp_path)
     before = _tree(lot)
     out = lot / "runs" if inside == "out" else tmp_path / "runs"
     cache = lot / ".cache" if inside == "cache" else tmp_path / "cache"
-    code = _exit(["run", str(_recipe(tmp_path)), str(lot), "--out", str(out), "--cache", str(cache)])
+    code = _exit(
+        ["run", str(_recipe(tmp_path)), str(lot), "--out", str(out), "--cache", str(cache)]
+    )
     assert code == EXIT_INVALID
     err = capsys.readouterr().err
     assert "lies inside the lot folder" in err and "Traceback" not in err
@@ -342,19 +414,53 @@ finally:
 """
 
 #: audit events (source: Python docs, "Audit events table") that change a file or folder
-_CHANGING = {"os.chmod", "os.chown", "os.chflags", "os.link", "os.mkdir", "os.remove", "os.rename",
-             "os.rmdir", "os.symlink", "os.truncate", "os.utime", "os.removexattr", "os.setxattr",
-             "shutil.chown", "shutil.copyfile", "shutil.copymode", "shutil.copystat", "shutil.copytree",
-             "shutil.move", "shutil.rmtree", "tempfile.mkstemp", "tempfile.mkdtemp"}
+_CHANGING = {
+    "os.chmod",
+    "os.chown",
+    "os.chflags",
+    "os.link",
+    "os.mkdir",
+    "os.remove",
+    "os.rename",
+    "os.rmdir",
+    "os.symlink",
+    "os.truncate",
+    "os.utime",
+    "os.removexattr",
+    "os.setxattr",
+    "shutil.chown",
+    "shutil.copyfile",
+    "shutil.copymode",
+    "shutil.copystat",
+    "shutil.copytree",
+    "shutil.move",
+    "shutil.rmtree",
+    "tempfile.mkstemp",
+    "tempfile.mkdtemp",
+}
 
 
 def test_lot_files_are_opened_read_only_and_never_changed(tmp_path: Path) -> None:
     # Every file operation of a real run, seen by a Python audit hook (PEP 578).
     lot = _lot(tmp_path)
-    argv = ["run", str(_recipe(tmp_path)), str(lot), "--out", str(tmp_path / "runs"),
-            "--cache", str(tmp_path / "cache"), "-j", "1", "-q"]
-    done = subprocess.run([sys.executable, "-c", _AUDITED_RUN, str(lot), *argv],
-                          capture_output=True, timeout=120, check=False)
+    argv = [
+        "run",
+        str(_recipe(tmp_path)),
+        str(lot),
+        "--out",
+        str(tmp_path / "runs"),
+        "--cache",
+        str(tmp_path / "cache"),
+        "-j",
+        "1",
+        "-q",
+    ]
+    done = subprocess.run(
+        [sys.executable, "-c", _AUDITED_RUN, str(lot), *argv],
+        capture_output=True,
+        timeout=120,
+        check=False,
+    )
     assert done.returncode in (EXIT_OK, EXIT_LIMIT_FAILED), done.stderr.decode()
     events = json.loads(done.stdout.decode().splitlines()[-1])
     opened = [args for event, args in events if event == "open"]
@@ -369,8 +475,9 @@ def test_lot_files_are_opened_read_only_and_never_changed(tmp_path: Path) -> Non
 # ---------------------------------------------------------------- bounded loads
 
 
-def test_a_recipe_over_the_size_bound_is_refused_before_parsing(tmp_path: Path,
-                                                                capsys: pytest.CaptureFixture[str]) -> None:
+def test_a_recipe_over_the_size_bound_is_refused_before_parsing(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     at_bound = RECIPE + "#" * (MAX_RECIPE_BYTES - len(RECIPE) - 1) + "\n"
     assert len(at_bound.encode()) == MAX_RECIPE_BYTES == 1_000_000
     ok = _recipe(tmp_path, at_bound)
@@ -378,7 +485,10 @@ def test_a_recipe_over_the_size_bound_is_refused_before_parsing(tmp_path: Path,
     over = tmp_path / "over.yaml"
     over.write_text(at_bound + "#")
     assert _exit(["check", str(over)]) == EXIT_INVALID
-    assert f"{over}:1:1: the file is 1000001 bytes; a recipe is at most 1000000 bytes" in capsys.readouterr().err
+    assert (
+        f"{over}:1:1: the file is 1000001 bytes; a recipe is at most 1000000 bytes"
+        in capsys.readouterr().err
+    )
     with pytest.raises(RecipeError):
         parse_recipe(b"[" * 10_000_000)  # too deep long before it is too big: no crash either
 
@@ -456,8 +566,12 @@ def test_cache_headers_and_declared_sizes_are_bounded(tmp_path: Path) -> None:
     assert store.get(key) is None
     assert any("no header" in m for m in store.drain_messages())
     # a header that declares a huge array is refused before anything is allocated
-    header = {"format": "lotproof-cache/1", "key": key, "checksum": "0" * 64,
-              "result": {"array": {"dtype": "|u1", "shape": [10**7, 10**7], "nbytes": 10**14}}}
+    header = {
+        "format": "lotproof-cache/1",
+        "key": key,
+        "checksum": "0" * 64,
+        "result": {"array": {"dtype": "|u1", "shape": [10**7, 10**7], "nbytes": 10**14}},
+    }
     path.write_bytes(json.dumps(header).encode() + b"\n" + b"\x00" * 16)
     store = DiskStore(tmp_path / "cache")  # a damaged key is reported once per store
     assert store.get(key) is None

@@ -203,9 +203,7 @@ def test_bad_data_is_refused() -> None:
 
 def test_raster_relabel() -> None:
     labels = np.array([[0, 7, 7], [3, 0, 9], [3, 9, 9]])
-    np.testing.assert_array_equal(
-        raster_relabel(labels), [[0, 1, 1], [2, 0, 3], [2, 3, 3]]
-    )
+    np.testing.assert_array_equal(raster_relabel(labels), [[0, 1, 1], [2, 0, 3], [2, 3, 3]])
     assert raster_relabel(np.zeros((2, 2), int)).dtype == np.int32
 
 
@@ -217,7 +215,9 @@ masks_2d = hnp.arrays(
 
 
 @settings(max_examples=150, deadline=None)
-@given(mask=masks_2d, connectivity=st.sampled_from([4, 8]), separation=st.sampled_from([1.0, 2.5, 6.0]))
+@given(
+    mask=masks_2d, connectivity=st.sampled_from([4, 8]), separation=st.sampled_from([1.0, 2.5, 6.0])
+)
 def test_labels_partition_the_mask_within_its_regions(mask, connectivity, separation) -> None:
     out = split(mask, separation=separation, connectivity=connectivity)
     assert out.dtype == np.int32 and out.shape == mask.shape
@@ -238,7 +238,9 @@ def test_labels_partition_the_mask_within_its_regions(mask, connectivity, separa
             _, pieces = ndimage.label(out == k, structure=structure)
             assert pieces == 1
     # deterministic
-    np.testing.assert_array_equal(split(mask, separation=separation, connectivity=connectivity), out)
+    np.testing.assert_array_equal(
+        split(mask, separation=separation, connectivity=connectivity), out
+    )
 
 
 @settings(max_examples=60, deadline=None)

@@ -19,8 +19,16 @@ class _Model(BaseModel):
 
 @pytest.mark.parametrize(
     ("text", "value", "unit"),
-    [("3 px", 3.0, "px"), ("1.5 um", 1.5, "um"), ("1.5µm", 1.5, "um"), ("2 micron", 2.0, "um"),
-     ("200 nm", 200.0, "nm"), ("0.1 mm", 0.1, "mm"), ("1e1 um", 10.0, "um"), ("1.5 μm", 1.5, "um")],
+    [
+        ("3 px", 3.0, "px"),
+        ("1.5 um", 1.5, "um"),
+        ("1.5µm", 1.5, "um"),
+        ("2 micron", 2.0, "um"),
+        ("200 nm", 200.0, "nm"),
+        ("0.1 mm", 0.1, "mm"),
+        ("1e1 um", 10.0, "um"),
+        ("1.5 μm", 1.5, "um"),
+    ],
 )
 def test_length_spellings(text: str, value: float, unit: str) -> None:
     length = _Model(radius=text).radius
@@ -29,13 +37,15 @@ def test_length_spellings(text: str, value: float, unit: str) -> None:
 
 @pytest.mark.parametrize(
     ("raw", "message"),
-    [(3, "a bare number where a length belongs (got 3); write 3 px or 1.5 um"),
-     ("3", "cannot read '3' as a length"),
-     ("-3 um", "must be > 0 um (got -3 um)"),
-     ("0 px", "must be > 0 px"),
-     ("3 um2", "'3 um2' is an area, but a length belongs here"),
-     ("3 inch", "unknown length unit 'inch'"),
-     (True, "a length with its unit is needed")],
+    [
+        (3, "a bare number where a length belongs (got 3); write 3 px or 1.5 um"),
+        ("3", "cannot read '3' as a length"),
+        ("-3 um", "must be > 0 um (got -3 um)"),
+        ("0 px", "must be > 0 px"),
+        ("3 um2", "'3 um2' is an area, but a length belongs here"),
+        ("3 inch", "unknown length unit 'inch'"),
+        (True, "a length with its unit is needed"),
+    ],
 )
 def test_length_errors(raw: object, message: str) -> None:
     with pytest.raises(ValidationError) as err:
@@ -70,8 +80,14 @@ def test_lengths_serialise_as_written() -> None:
 
 @pytest.mark.parametrize(
     ("raw", "unit", "expected"),
-    [(0.18, "-", 0.18), ("60 um", "um", 60.0), ("0.06 mm", "um", 60.0), ("150 1/mm2", "1/mm2", 150.0),
-     ("1.5e-4 1/um2", "1/mm2", 150.0), (1, "-", 1.0)],
+    [
+        (0.18, "-", 0.18),
+        ("60 um", "um", 60.0),
+        ("0.06 mm", "um", 60.0),
+        ("150 1/mm2", "1/mm2", 150.0),
+        ("1.5e-4 1/um2", "1/mm2", 150.0),
+        (1, "-", 1.0),
+    ],
 )
 def test_bounds_in_the_value_unit(raw: object, unit: str, expected: float) -> None:
     assert parse_bound(raw, unit) == pytest.approx(expected)
@@ -79,8 +95,13 @@ def test_bounds_in_the_value_unit(raw: object, unit: str, expected: float) -> No
 
 @pytest.mark.parametrize(
     ("raw", "unit", "message"),
-    [(60, "um", "write 60 um"), ("60", "um", "write 60 um"), ("60 um2", "um", "does not fit"),
-     ("0.1 um", "-", "dimensionless"), (True, "-", "a number is needed")],
+    [
+        (60, "um", "write 60 um"),
+        ("60", "um", "write 60 um"),
+        ("60 um2", "um", "does not fit"),
+        ("0.1 um", "-", "dimensionless"),
+        (True, "-", "a number is needed"),
+    ],
 )
 def test_bound_errors(raw: object, unit: str, message: str) -> None:
     with pytest.raises(BoundError, match=message):
@@ -92,8 +113,19 @@ def test_yaml_12_scalars() -> None:
     data = load_yaml(
         "a: no\nb: off\nc: 010\nd: 12:30\ne: 1e3\nf: 2024-01-02\ng: ~\nh: true\ni: 0x1F\nj: .inf\nk: yes\n"
     ).data
-    assert data == {"a": "no", "b": "off", "c": 10, "d": "12:30", "e": 1000.0, "f": "2024-01-02",
-                    "g": None, "h": True, "i": 31, "j": math.inf, "k": "yes"}
+    assert data == {
+        "a": "no",
+        "b": "off",
+        "c": 10,
+        "d": "12:30",
+        "e": 1000.0,
+        "f": "2024-01-02",
+        "g": None,
+        "h": True,
+        "i": 31,
+        "j": math.inf,
+        "k": "yes",
+    }
 
 
 def test_yaml_positions_are_one_based() -> None:
@@ -105,9 +137,15 @@ def test_yaml_positions_are_one_based() -> None:
 
 @pytest.mark.parametrize(
     ("text", "message"),
-    [("a: 1\na: 2\n", "duplicate key 'a'"), ("a: &x 1\nb: *x\n", "anchors"),
-     ("a: *x\n", "aliases"), ("a: !!python/object:os.system x\n", "explicit tag"),
-     ("[" * 200, "nesting deeper"), ("", "empty"), ("1: a\n", "a key must be text")],
+    [
+        ("a: 1\na: 2\n", "duplicate key 'a'"),
+        ("a: &x 1\nb: *x\n", "anchors"),
+        ("a: *x\n", "aliases"),
+        ("a: !!python/object:os.system x\n", "explicit tag"),
+        ("[" * 200, "nesting deeper"),
+        ("", "empty"),
+        ("1: a\n", "a key must be text"),
+    ],
 )
 def test_yaml_refusals(text: str, message: str) -> None:
     loaded = load_yaml(text)

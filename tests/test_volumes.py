@@ -47,11 +47,16 @@ VOLUME = (np.arange(6 * 8 * 10) % 200).astype(np.uint8).reshape(6, 8, 10)
 
 def test_imagej_ome_and_page_stacks_load_as_volumes(tmp_path: Path) -> None:
     tifffile.imwrite(
-        tmp_path / "ij.tif", VOLUME, imagej=True, resolution=(1 / 0.8, 1 / 0.8),
+        tmp_path / "ij.tif",
+        VOLUME,
+        imagej=True,
+        resolution=(1 / 0.8, 1 / 0.8),
         metadata={"spacing": 1.2, "unit": "micron", "axes": "ZYX"},
     )
     tifffile.imwrite(
-        tmp_path / "ome.tif", VOLUME, ome=True,
+        tmp_path / "ome.tif",
+        VOLUME,
+        ome=True,
         metadata={"axes": "ZYX", "PhysicalSizeX": 0.8, "PhysicalSizeY": 0.8, "PhysicalSizeZ": 1.2},
     )
     with tifffile.TiffWriter(tmp_path / "pages.tif") as writer:
@@ -149,7 +154,10 @@ def _ball_volume(tmp_path: Path, spacing_zyx: tuple[float, float, float] | None)
     else:
         dz, dy, dx = spacing_zyx
         tifffile.imwrite(
-            lot / "v.tif", data, imagej=True, resolution=(1 / dx, 1 / dy),
+            lot / "v.tif",
+            data,
+            imagej=True,
+            resolution=(1 / dx, 1 / dy),
             metadata={"spacing": dz, "unit": "um", "axes": "ZYX"},
         )
     return lot
@@ -157,8 +165,9 @@ def _ball_volume(tmp_path: Path, spacing_zyx: tuple[float, float, float] | None)
 
 def test_image_and_recipe_must_agree(tmp_path: Path) -> None:
     lot = _ball_volume(tmp_path, (2.0, 1.0, 1.0))
-    agreeing = run_lot(load_recipe(_recipe(tmp_path, "voxel_size: [1 um, 1 um, 2 um]")), lot,
-                       tmp_path / "runs")
+    agreeing = run_lot(
+        load_recipe(_recipe(tmp_path, "voxel_size: [1 um, 1 um, 2 um]")), lot, tmp_path / "runs"
+    )
     result = agreeing.results[0]
     assert result.status == "ok" and result.spacing == (2.0, 1.0, 1.0)
     # z 2 um per voxel: the ball of 6 voxels radius in x and y has 3 slices of radius in z
@@ -169,12 +178,14 @@ def test_image_and_recipe_must_agree(tmp_path: Path) -> None:
     assert refused.results[0].status == "incomplete"
     assert "differ by more than 1%" in refused.results[0].reason
     assert "z 2" in refused.results[0].reason
-    won = run_lot(load_recipe(_recipe(tmp_path, text + "\ncalibration: recipe-wins")), lot,
-                  tmp_path / "runs")
+    won = run_lot(
+        load_recipe(_recipe(tmp_path, text + "\ncalibration: recipe-wins")), lot, tmp_path / "runs"
+    )
     assert won.results[0].status == "ok" and won.results[0].spacing == (1.5, 1.0, 1.0)
     assert any("recipe-wins" in note for note in won.results[0].notes)
-    from_image = run_lot(load_recipe(_recipe(tmp_path, "pixel_size: from-image")), lot,
-                         tmp_path / "runs")
+    from_image = run_lot(
+        load_recipe(_recipe(tmp_path, "pixel_size: from-image")), lot, tmp_path / "runs"
+    )
     assert from_image.results[0].spacing == pytest.approx((2.0, 1.0, 1.0))
 
 
@@ -182,8 +193,9 @@ def test_uncalibrated_volume_takes_the_recipe_size(tmp_path: Path) -> None:
     lot = _ball_volume(tmp_path, None)
     summary = run_lot(load_recipe(_recipe(tmp_path, "pixel_size: 1 um")), lot, tmp_path / "runs")
     assert summary.results[0].status == "ok" and summary.results[0].spacing == (1.0, 1.0, 1.0)
-    two_d = run_lot(load_recipe(_recipe(tmp_path, "voxel_size: [1 um, 1 um]")), lot,
-                    tmp_path / "runs")
+    two_d = run_lot(
+        load_recipe(_recipe(tmp_path, "voxel_size: [1 um, 1 um]")), lot, tmp_path / "runs"
+    )
     assert "write voxel_size: [x, y, z]" in two_d.results[0].reason
 
 
@@ -223,7 +235,8 @@ def test_box_and_line_footprints_per_axis() -> None:
     assert _footprint((2.0, 1.0, 1.0), footprint="cube", size="5 um").shape == (3, 5, 5)
     # 3 um: 6 -> 7 px along x (dx 0.5 um), 3 px along y
     assert _footprint((1.0, 0.5), footprint="rectangle", width="3 um", height="3 um").shape == (
-        3, 7,
+        3,
+        7,
     )
     horizontal = _footprint((1.0, 0.5), footprint="line", length="3 um")
     np.testing.assert_array_equal(horizontal, np.ones((1, 7), bool))
@@ -239,8 +252,9 @@ def test_remove_small_by_volume() -> None:
     mask[0, 0, :3] = True  # 3 voxels
     mask[3, 3, 3] = True  # 1 voxel
     params = RemoveSmallParams(min_volume=Volume(3, "px3"))
-    np.testing.assert_array_equal(remove_small(params, mask, spacing=(1.0,) * 3), mask & (
-        np.arange(4)[:, None, None] == 0))
+    np.testing.assert_array_equal(
+        remove_small(params, mask, spacing=(1.0,) * 3), mask & (np.arange(4)[:, None, None] == 0)
+    )
     with pytest.raises(ValueError, match="min_volume is for 3-D masks"):
         remove_small(params, mask[0], spacing=(1.0, 1.0))
     with pytest.raises(ValidationError, match="either min_area or min_volume"):
@@ -280,8 +294,9 @@ def test_area_weighted_mean_and_border_rule_2d() -> None:
     assert excluded.values["ecd_max"] == pytest.approx(ecd1)
     assert excluded.values["area_fraction"] == out.values["area_fraction"] == 5 / 64
     assert excluded.data.n_rows == 2
-    only_border = measure(MeasureParams(border="exclude"), mask & ~(np.arange(8) == 4)[:, None],
-                          spacing=spacing)
+    only_border = measure(
+        MeasureParams(border="exclude"), mask & ~(np.arange(8) == 4)[:, None], spacing=spacing
+    )
     assert math.isnan(only_border.values["ecd_mean"])
 
 
@@ -300,7 +315,11 @@ def test_measure_3d_literal_values() -> None:
     assert table["centroid_z"][1] == 3.0
     assert out.values["volume_fraction"] == 9 / 120
     assert out.values["number_density_3d"] == pytest.approx(2 / (120 * 1e-9))
-    assert out.values["esd_max"] == out.values["esd_mean"] == pytest.approx((6 * 8 / math.pi) ** (1 / 3))
+    assert (
+        out.values["esd_max"]
+        == out.values["esd_mean"]
+        == pytest.approx((6 * 8 / math.pi) ** (1 / 3))
+    )
     assert out.values["size_count"] == 1
     assert out.values["surface_density"] > 0
     with pytest.raises(ValueError, match="connectivity 6 or 26"):
@@ -318,6 +337,7 @@ def test_phase_fraction() -> None:
     phase[1, 3, 3] = True  # outside the reference: not counted
     out = phase_fraction(PhaseFractionParams(), phase, reference, spacing=(1.0,) * 3)
     assert out.values == {"fraction": 3 / 16, "reference_fraction": 0.5}
-    nothing = phase_fraction(PhaseFractionParams(), phase, ~np.ones_like(reference),
-                             spacing=(1.0,) * 3)
+    nothing = phase_fraction(
+        PhaseFractionParams(), phase, ~np.ones_like(reference), spacing=(1.0,) * 3
+    )
     assert math.isnan(nothing.values["fraction"])

@@ -62,7 +62,7 @@ def _lines(extent: float) -> np.ndarray:
 
 def _struts() -> np.ndarray:
     z, y, x = _axes_um()
-    extent = [n * d for n, d in zip(SHAPE, VOXEL_UM)]
+    extent = [n * d for n, d in zip(SHAPE, VOXEL_UM, strict=False)]
     lz, ly, lx = (_lines(e) for e in extent)
     r2 = STRUT_RADIUS_UM**2
     solid = np.zeros(SHAPE, dtype=bool)
@@ -78,7 +78,7 @@ def _struts() -> np.ndarray:
 
 def _voids(rng: np.random.Generator, count: int, radii: tuple[float, float]) -> list[dict]:
     """Ellipsoidal voids, each wholly inside one strut and apart from the others."""
-    extent = [n * d for n, d in zip(SHAPE, VOXEL_UM)]
+    extent = [n * d for n, d in zip(SHAPE, VOXEL_UM, strict=False)]
     # only struts wholly inside the volume carry voids: a void in a strut cut by
     # the frame would be open to the outside
     lines = [

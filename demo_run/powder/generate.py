@@ -72,20 +72,20 @@ import tifffile
 from scipy import ndimage
 
 __all__ = [
+    "FINES_BELOW_UM",
+    "FINES_RICH_IMAGE",
     "LOT",
     "N_IMAGES",
-    "SHAPE",
+    "PARAMETERS",
     "PIXEL_SIZE_UM",
     "RESOLUTION_PX_PER_CM",
-    "FINES_RICH_IMAGE",
-    "FINES_BELOW_UM",
-    "PARAMETERS",
+    "SHAPE",
     "TRUTH_FILE",
-    "image_name",
-    "render",
     "generate",
-    "truth_json",
+    "image_name",
     "main",
+    "render",
+    "truth_json",
 ]
 
 #: Lot identifier; images are named ``PW-2612-01.tif`` ... ``PW-2612-06.tif``.
@@ -153,7 +153,7 @@ def image_name(index: int) -> str:
 
 def _gaussian_weights(sigma_px: float) -> np.ndarray:
     # Scalar math.exp, so no vectorised transcendental function enters the pixels.
-    radius = int(math.ceil(PARAMETERS["gaussian_truncate_sigmas"] * sigma_px))
+    radius = math.ceil(PARAMETERS["gaussian_truncate_sigmas"] * sigma_px)
     raw = [math.exp(-0.5 * (k / sigma_px) ** 2) for k in range(-radius, radius + 1)]
     total = math.fsum(raw)
     return np.array([w / total for w in raw], dtype=np.float64)
@@ -195,7 +195,9 @@ def _clear(x: float, y: float, r: float, placed: list[dict[str, Any]], skip: int
     return True
 
 
-def _free_spot(rng: np.random.Generator, r: float, placed: list[dict[str, Any]]) -> tuple[float, float]:
+def _free_spot(
+    rng: np.random.Generator, r: float, placed: list[dict[str, Any]]
+) -> tuple[float, float]:
     rows, cols = SHAPE
     for _ in range(20000):
         x = float(rng.uniform(0.0, cols))
@@ -213,10 +215,15 @@ def _place_grains(rng: np.random.Generator, index: int) -> list[dict[str, Any]]:
     diameters: list[float] = []
     area = 0.0
     while area < target:
-        d = _lognormal(
-            rng, p["particle_diameter_median_um"], p["particle_diameter_log_sigma"],
-            p["particle_diameter_range_um"],
-        ) / PIXEL_SIZE_UM
+        d = (
+            _lognormal(
+                rng,
+                p["particle_diameter_median_um"],
+                p["particle_diameter_log_sigma"],
+                p["particle_diameter_range_um"],
+            )
+            / PIXEL_SIZE_UM
+        )
         diameters.append(d)
         area += math.pi / 4.0 * d * d
     diameters.sort(reverse=True)
@@ -270,11 +277,16 @@ def _place_grains(rng: np.random.Generator, index: int) -> list[dict[str, Any]]:
 
     n_particles = sum(1 for c in circles if c["kind"] == "particle")
     per = p["fines_per_particle_rich"] if index == FINES_RICH_IMAGE else p["fines_per_particle"]
-    for _ in range(int(round(per * n_particles))):
-        d = _lognormal(
-            rng, p["fines_diameter_median_um"], p["fines_diameter_log_sigma"],
-            p["fines_diameter_range_um"],
-        ) / PIXEL_SIZE_UM
+    for _ in range(round(per * n_particles)):
+        d = (
+            _lognormal(
+                rng,
+                p["fines_diameter_median_um"],
+                p["fines_diameter_log_sigma"],
+                p["fines_diameter_range_um"],
+            )
+            / PIXEL_SIZE_UM
+        )
         level = float(rng.uniform(*p["particle_level_range"]))
         x, y = _free_spot(rng, 0.5 * d, circles)
         circles.append({"x": x, "y": y, "r": 0.5 * d, "level": level, "kind": "fine", "host": -1})
@@ -312,7 +324,11 @@ def _percentiles(values: list[float]) -> dict[str, float | None]:
         return {"d10": None, "d50": None, "d90": None}
     arr = np.asarray(values, dtype=np.float64)
     out = np.percentile(arr, [10.0, 50.0, 90.0], method="linear")
-    return {"d10": round(float(out[0]), 4), "d50": round(float(out[1]), 4), "d90": round(float(out[2]), 4)}
+    return {
+        "d10": round(float(out[0]), 4),
+        "d50": round(float(out[1]), 4),
+        "d90": round(float(out[2]), 4),
+    }
 
 
 def _render(index: int) -> tuple[np.ndarray, dict[str, Any], np.ndarray]:
@@ -345,8 +361,10 @@ def _render(index: int) -> tuple[np.ndarray, dict[str, Any], np.ndarray]:
         # the circle reaches beyond the frame, or its pixels touch the outer row or column
         on_frame.append(
             bool(
-                c["x"] - c["r"] < 0.0 or c["y"] - c["r"] < 0.0
-                or c["x"] + c["r"] > cols - 1 or c["y"] + c["r"] > rows - 1
+                c["x"] - c["r"] < 0.0
+                or c["y"] - c["r"] < 0.0
+                or c["x"] + c["r"] > cols - 1
+                or c["y"] + c["r"] > rows - 1
             )
         )
 
@@ -374,8 +392,8 @@ def _render(index: int) -> tuple[np.ndarray, dict[str, Any], np.ndarray]:
     diameter = [round(2.0 * circles[n]["r"] * PIXEL_SIZE_UM, 4) for n in grains]
     ecd = [round(math.sqrt(4.0 * own_pixels[n] * px_area / math.pi), 4) for n in grains]
     cut = [bool(frame[cluster_id[n]]) for n in grains]
-    inside_ecd = [e for e, k in zip(ecd, cut) if not k]
-    inside_diameter = [d for d, k in zip(diameter, cut) if not k]
+    inside_ecd = [e for e, k in zip(ecd, cut, strict=False) if not k]
+    inside_diameter = [d for d, k in zip(diameter, cut, strict=False) if not k]
     members: dict[int, int] = {}
     for n in grains:
         members[cluster_id[n]] = members.get(cluster_id[n], 0) + 1

@@ -37,10 +37,20 @@ def cli() -> None:
 
 
 for _command in (
-    method.check, method.steps_command, method.schema,
-    runs.run, runs.rerun, runs.cache, runs.demo,
-    record.verify, record.keygen_command, record.export, record.diff, record.compare,
-    show.report, show.preview,
+    method.check,
+    method.steps_command,
+    method.schema,
+    runs.run,
+    runs.rerun,
+    runs.cache,
+    runs.demo,
+    record.verify,
+    record.keygen_command,
+    record.export,
+    record.diff,
+    record.compare,
+    show.report,
+    show.preview,
 ):
     cli.add_command(_command)
 

@@ -50,8 +50,13 @@ def check(recipe: Path, as_json: bool) -> None:
                     for n, s in checked.steps.items()
                 },
                 "limits": {
-                    n: {"value": f"{lim.step}.{lim.value}", "unit": lim.unit, "over": lim.over,
-                        "min": lim.low, "max": lim.high}
+                    n: {
+                        "value": f"{lim.step}.{lim.value}",
+                        "unit": lim.unit,
+                        "over": lim.over,
+                        "min": lim.low,
+                        "max": lim.high,
+                    }
                     for n, lim in checked.limits.items()
                 },
             }
@@ -127,7 +132,9 @@ def steps_command(kind: str | None, as_json: bool) -> None:
                         name: {"unit": unit, "definition": k.definitions.get(name, "")}
                         for name, unit in k.values.items()
                     },
-                    "columns": {name: {"unit": u, "definition": d} for name, (u, d) in k.columns.items()},
+                    "columns": {
+                        name: {"unit": u, "definition": d} for name, (u, d) in k.columns.items()
+                    },
                     "parameters": [
                         {"name": n, "type": t, "default": d, "description": desc}
                         for n, t, d, desc in param_rows(k)
@@ -184,5 +191,3 @@ def steps_command(kind: str | None, as_json: bool) -> None:
 def schema() -> None:
     """Print the recipe's JSON Schema (draft-07) for editors."""
     click.echo(schema_text(), nl=False)
-
-

@@ -19,7 +19,7 @@ from lotproof.runner.errors import EXIT_INVALID, RecipeError
 from lotproof.runner.files import write_file
 from lotproof.runner.record.layout import inside_run_folder
 
-__all__ = ["verify", "keygen_command", "export", "diff", "compare"]
+__all__ = ["compare", "diff", "export", "keygen_command", "verify"]
 
 _STATUS_STYLE = {"intact": "green", "altered": "bold red", "unfinished": "yellow"}
 
@@ -43,10 +43,19 @@ def _number(value: float | None) -> str:
 
 @click.command()
 @click.argument("run", type=click.Path(file_okay=False, path_type=Path))
-@click.option("--key", "key", type=click.Path(dir_okay=False, path_type=Path), default=None,
-              help="Ed25519 public key (PEM): check the signature of the seal (seal.sig)")
-@click.option("--seal", "seal", default=None,
-              help="the seal printed at the end of the run: check the record ends in it")
+@click.option(
+    "--key",
+    "key",
+    type=click.Path(dir_okay=False, path_type=Path),
+    default=None,
+    help="Ed25519 public key (PEM): check the signature of the seal (seal.sig)",
+)
+@click.option(
+    "--seal",
+    "seal",
+    default=None,
+    help="the seal printed at the end of the run: check the record ends in it",
+)
 @click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
 def verify(run: Path, key: Path | None, seal: str | None, as_json: bool) -> None:
     """Check that RUN's record is intact: the ledger chain, every file, the signature.
@@ -64,11 +73,14 @@ def verify(run: Path, key: Path | None, seal: str | None, as_json: bool) -> None
         emit_json(report.as_dict())
         raise SystemExit(report.exit_code)
     console = stdout()
-    console.print(Text(report.status.upper(), style=_STATUS_STYLE[report.status])
-                  + Text(f"  {run}"))
+    console.print(
+        Text(report.status.upper(), style=_STATUS_STYLE[report.status]) + Text(f"  {run}")
+    )
     console.print(f"seal: {report.seal or '-'}")
-    console.print(f"{report.events} ledger events, {report.checked_files} files checked, "
-                  f"signature: {report.signature}")
+    console.print(
+        f"{report.events} ledger events, {report.checked_files} files checked, "
+        f"signature: {report.signature}"
+    )
     if report.problems:
         table = _table("problems, first first", ("#", "problem"))
         for i, problem in enumerate(report.problems, 1):
@@ -102,10 +114,20 @@ def keygen_command(private: Path, public: Path) -> None:
 @click.argument("run", type=click.Path(file_okay=False, exists=True, path_type=Path))
 @click.option("--attestation", is_flag=True, help="an in-toto Statement v1 of the run")
 @click.option("--prov", is_flag=True, help="the run as a W3C PROV-JSON document")
-@click.option("--key", "key", type=click.Path(dir_okay=False, exists=True, path_type=Path),
-              default=None, help="Ed25519 private key (PEM): sign the attestation in a DSSE envelope")
-@click.option("--out", "out", type=click.Path(dir_okay=False, path_type=Path), default=None,
-              help="write to this new file instead of stdout (never overwritten)")
+@click.option(
+    "--key",
+    "key",
+    type=click.Path(dir_okay=False, exists=True, path_type=Path),
+    default=None,
+    help="Ed25519 private key (PEM): sign the attestation in a DSSE envelope",
+)
+@click.option(
+    "--out",
+    "out",
+    type=click.Path(dir_okay=False, path_type=Path),
+    default=None,
+    help="write to this new file instead of stdout (never overwritten)",
+)
 def export(run: Path, attestation: bool, prov: bool, key: Path | None, out: Path | None) -> None:
     """Export RUN's record: --attestation (in-toto, signed with --key) or --prov.
 
@@ -179,16 +201,21 @@ def diff(a: str, b: str, as_json: bool) -> None:
         emit_json(result.as_dict())
         return
     console = stdout()
-    console.print(Text(f"{result.a} ({result.a_label}) -> {result.b} ({result.b_label})", style="bold"))
+    console.print(
+        Text(f"{result.a} ({result.a_label}) -> {result.b} ({result.b_label})", style="bold")
+    )
     for warning in result.warnings:
         console.print(Text(f"warning: {warning}", style="yellow"))
     if result.identical:
         note = " (only comments or layout differ)" if result.bytes_differ else ""
         console.print(f"identical{note}")
         return
-    for label, names in (("steps added", result.steps_added), ("steps removed", result.steps_removed),
-                         ("limits added", result.limits_added),
-                         ("limits removed", result.limits_removed)):
+    for label, names in (
+        ("steps added", result.steps_added),
+        ("steps removed", result.steps_removed),
+        ("limits added", result.limits_added),
+        ("limits removed", result.limits_removed),
+    ):
         if names:
             console.print(f"{label}: " + ", ".join(names))
     changes = result.top + result.steps_changed + result.limits_changed
@@ -222,24 +249,38 @@ def compare(run_a: Path, run_b: Path, as_json: bool) -> None:
         return f"{m.get('name', '?')} r{m.get('revision', '?')}"
 
     same = "same recipe" if result.same_recipe else "different recipes"
-    console.print(Text(f"{method(result.method_a)} -> {method(result.method_b)} ({same})", style="bold"))
-    console.print(Text("lot verdict: ") + mark(result.lot_verdict_a) + Text(" -> ")
-                  + mark(result.lot_verdict_b))
-    for label, names in (("images only in A", result.images_only_a),
-                         ("images only in B", result.images_only_b),
-                         ("values only in A", result.columns_only_a),
-                         ("values only in B", result.columns_only_b),
-                         ("limits only in A", result.limits_only_a),
-                         ("limits only in B", result.limits_only_b)):
+    console.print(
+        Text(f"{method(result.method_a)} -> {method(result.method_b)} ({same})", style="bold")
+    )
+    console.print(
+        Text("lot verdict: ")
+        + mark(result.lot_verdict_a)
+        + Text(" -> ")
+        + mark(result.lot_verdict_b)
+    )
+    for label, names in (
+        ("images only in A", result.images_only_a),
+        ("images only in B", result.images_only_b),
+        ("values only in A", result.columns_only_a),
+        ("values only in B", result.columns_only_b),
+        ("limits only in A", result.limits_only_a),
+        ("limits only in B", result.limits_only_b),
+    ):
         if names:
             console.print(Text(f"{label}: " + ", ".join(names), style="yellow"))
     if result.limits:
         table = _table("limits", ("limit", "over", "A", "B", "B - A", "verdict A", "verdict B"))
         for lim in result.limits:
             unit = "" if lim.unit in ("-", "") else f" {lim.unit}"
-            table.add_row(lim.name, lim.over_b, _number(lim.value_a) + unit,
-                          _number(lim.value_b) + unit, _number(lim.delta),
-                          mark(lim.verdict_a), mark(lim.verdict_b))
+            table.add_row(
+                lim.name,
+                lim.over_b,
+                _number(lim.value_a) + unit,
+                _number(lim.value_b) + unit,
+                _number(lim.delta),
+                mark(lim.verdict_a),
+                mark(lim.verdict_b),
+            )
         console.print(table)
     if result.verdict_changes:
         table = _table("verdict changes", ("image", "what", "A", "B"))
@@ -248,14 +289,16 @@ def compare(run_a: Path, run_b: Path, as_json: bool) -> None:
         console.print(table)
     changed = result.changed_values
     if changed:
-        table = _table("values that differ", ("image", "value", "unit", "A", "B", "B - A", "relative"))
+        table = _table(
+            "values that differ", ("image", "value", "unit", "A", "B", "B - A", "relative")
+        )
         for v in changed:
             relative = "-" if v.relative is None else f"{v.relative:+.3%}"
-            table.add_row(v.image, v.column, v.unit, _number(v.a), _number(v.b),
-                          _number(v.absolute), relative)
+            table.add_row(
+                v.image, v.column, v.unit, _number(v.a), _number(v.b), _number(v.absolute), relative
+            )
         console.print(table)
     equal = len(result.values) - len(changed)
     console.print(f"{equal} of {len(result.values)} shared values are equal bit for bit")
     if result.identical:
         console.print("identical")
-

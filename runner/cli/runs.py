@@ -50,7 +50,11 @@ def _print_summary(summary: Any) -> None:
         for name, lv in verdicts.limits.items():
             if lv.over == "each":
                 failing = [i for i, (_, v) in lv.per_image.items() if v == FAIL]
-                value = f"{len(failing)} of {len(lv.per_image)} images fail" if failing else "every image"
+                value = (
+                    f"{len(failing)} of {len(lv.per_image)} images fail"
+                    if failing
+                    else "every image"
+                )
             else:
                 value = f"{lv.value:.6g}" if lv.value is not None else "-"
                 value += "" if lv.unit == "-" else f" {lv.unit}"
@@ -102,10 +106,23 @@ def run_recipe(
     documents = []
     codes: list[int] = []
     try:
-        with open_executor(executor_kind, jobs=jobs, scheduler=scheduler, workers=workers) as executor:
+        with open_executor(
+            executor_kind, jobs=jobs, scheduler=scheduler, workers=workers
+        ) as executor:
             for lot in lots:
-                _run_one(checked, lot, out, as_json, quiet, store, executor, sign, err_console,
-                         documents, codes)
+                _run_one(
+                    checked,
+                    lot,
+                    out,
+                    as_json,
+                    quiet,
+                    store,
+                    executor,
+                    sign,
+                    err_console,
+                    documents,
+                    codes,
+                )
     except ExecutorError as err:
         raise click.UsageError(str(err)) from None
     if as_json:
@@ -117,9 +134,19 @@ def run_recipe(
     return EXIT_OK
 
 
-def _run_one(checked: Any, lot: Path, out: Path, as_json: bool, quiet: bool, store: Any,
-             executor: Any, sign: Path | None, err_console: Console,
-             documents: list[Any], codes: list[int]) -> None:
+def _run_one(
+    checked: Any,
+    lot: Path,
+    out: Path,
+    as_json: bool,
+    quiet: bool,
+    store: Any,
+    executor: Any,
+    sign: Path | None,
+    err_console: Console,
+    documents: list[Any],
+    codes: list[int],
+) -> None:
 
     progress = None
     task = None
@@ -134,9 +161,13 @@ def _run_one(checked: Any, lot: Path, out: Path, as_json: bool, quiet: bool, sto
         )
 
         progress = Progress(
-            TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
-            TextColumn("{task.fields[status]}"), TimeElapsedColumn(),
-            console=err_console, transient=True,
+            TextColumn("{task.description}"),
+            BarColumn(),
+            MofNCompleteColumn(),
+            TextColumn("{task.fields[status]}"),
+            TimeElapsedColumn(),
+            console=err_console,
+            transient=True,
         )
         progress.start()
 
@@ -167,8 +198,16 @@ def _run_one(checked: Any, lot: Path, out: Path, as_json: bool, quiet: bool, sto
                 err_console.print(Text(f"incomplete: {reason}", style="yellow"))
 
     try:
-        summary = run_lot(checked, lot, out, store=store, executor=executor, sign=sign,
-                          on_start=started, on_image=done)
+        summary = run_lot(
+            checked,
+            lot,
+            out,
+            store=store,
+            executor=executor,
+            sign=sign,
+            on_start=started,
+            on_image=done,
+        )
     finally:
         if progress is not None:
             progress.stop()
@@ -182,36 +221,90 @@ def _run_one(checked: Any, lot: Path, out: Path, as_json: bool, quiet: bool, sto
 @click.command()
 @click.argument("recipe", type=click.Path(dir_okay=False, path_type=Path))
 @click.argument("lots", nargs=-1, required=True, type=click.Path(path_type=Path))
-@click.option("--out", type=click.Path(file_okay=False, path_type=Path), default=Path("runs"),
-              show_default=True, help="folder that receives the new run folder")
-@click.option("--jobs", "-j", type=click.IntRange(min=1), default=None,
-              help="images analysed at once, each in its own process [default: usable cores]")
-@click.option("--cache", type=click.Path(file_okay=False, path_type=Path), default=None,
-              help="cache folder [default: $LOTPROOF_CACHE or the user cache folder]")
+@click.option(
+    "--out",
+    type=click.Path(file_okay=False, path_type=Path),
+    default=Path("runs"),
+    show_default=True,
+    help="folder that receives the new run folder",
+)
+@click.option(
+    "--jobs",
+    "-j",
+    type=click.IntRange(min=1),
+    default=None,
+    help="images analysed at once, each in its own process [default: usable cores]",
+)
+@click.option(
+    "--cache",
+    type=click.Path(file_okay=False, path_type=Path),
+    default=None,
+    help="cache folder [default: $LOTPROOF_CACHE or the user cache folder]",
+)
 @click.option("--no-cache", is_flag=True, help="compute everything, store nothing")
-@click.option("--sign", type=click.Path(dir_okay=False, exists=True, path_type=Path), default=None,
-              help="Ed25519 private key (from `lotproof keygen`) to sign the run's seal with")
-@click.option("--executor", "executor_kind", type=click.Choice(list(EXECUTOR_KINDS)),
-              default="local", show_default=True,
-              help="where images are analysed: this machine, an existing dask scheduler, or a dask "
-              "cluster started for the run")
-@click.option("--scheduler", default=None, metavar="tcp://HOST:PORT",
-              help="the dask scheduler for --executor dask [default: $DASK_SCHEDULER_ADDRESS]")
-@click.option("--workers", type=click.IntRange(min=1), default=None,
-              help="worker processes for --executor dask-local [default: usable cores]")
+@click.option(
+    "--sign",
+    type=click.Path(dir_okay=False, exists=True, path_type=Path),
+    default=None,
+    help="Ed25519 private key (from `lotproof keygen`) to sign the run's seal with",
+)
+@click.option(
+    "--executor",
+    "executor_kind",
+    type=click.Choice(list(EXECUTOR_KINDS)),
+    default="local",
+    show_default=True,
+    help="where images are analysed: this machine, an existing dask scheduler, or a dask "
+    "cluster started for the run",
+)
+@click.option(
+    "--scheduler",
+    default=None,
+    metavar="tcp://HOST:PORT",
+    help="the dask scheduler for --executor dask [default: $DASK_SCHEDULER_ADDRESS]",
+)
+@click.option(
+    "--workers",
+    type=click.IntRange(min=1),
+    default=None,
+    help="worker processes for --executor dask-local [default: usable cores]",
+)
 @click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
 @click.option("--quiet", "-q", is_flag=True, help="no progress or messages on stderr")
-def run(recipe: Path, lots: tuple[Path, ...], out: Path, jobs: int | None, cache: Path | None,
-        no_cache: bool, sign: Path | None, executor_kind: str, scheduler: str | None,
-        workers: int | None, as_json: bool, quiet: bool) -> None:
+def run(
+    recipe: Path,
+    lots: tuple[Path, ...],
+    out: Path,
+    jobs: int | None,
+    cache: Path | None,
+    no_cache: bool,
+    sign: Path | None,
+    executor_kind: str,
+    scheduler: str | None,
+    workers: int | None,
+    as_json: bool,
+    quiet: bool,
+) -> None:
     """Run RECIPE on each LOT folder; write a new run folder per lot under --out.
 
     Exit 0 when every limit passed, 1 when a limit failed, 3 when an image could not
     be analysed (the lot is incomplete), 2 when the recipe is invalid.
     """
     raise SystemExit(
-        run_recipe(recipe, lots, out, as_json, quiet, jobs=jobs, cache=cache, no_cache=no_cache, sign=sign,
-             executor_kind=executor_kind, scheduler=scheduler, workers=workers)
+        run_recipe(
+            recipe,
+            lots,
+            out,
+            as_json,
+            quiet,
+            jobs=jobs,
+            cache=cache,
+            no_cache=no_cache,
+            sign=sign,
+            executor_kind=executor_kind,
+            scheduler=scheduler,
+            workers=workers,
+        )
     )
 
 
@@ -219,12 +312,24 @@ def run(recipe: Path, lots: tuple[Path, ...], out: Path, jobs: int | None, cache
 
 
 @click.command()
-@click.argument("run_dir", metavar="RUN", type=click.Path(file_okay=False, exists=True, path_type=Path))
-@click.option("--lot", type=click.Path(file_okay=False, exists=True, path_type=Path), default=None,
-              help="find the recorded inputs here, by checksum, if they moved")
-@click.option("--out", type=click.Path(file_okay=False, path_type=Path), default=None,
-              help="folder for the rerun's own run folder [default: beside RUN]")
-@click.option("--strict", is_flag=True, help="refuse to start (exit 4) when library versions differ")
+@click.argument(
+    "run_dir", metavar="RUN", type=click.Path(file_okay=False, exists=True, path_type=Path)
+)
+@click.option(
+    "--lot",
+    type=click.Path(file_okay=False, exists=True, path_type=Path),
+    default=None,
+    help="find the recorded inputs here, by checksum, if they moved",
+)
+@click.option(
+    "--out",
+    type=click.Path(file_okay=False, path_type=Path),
+    default=None,
+    help="folder for the rerun's own run folder [default: beside RUN]",
+)
+@click.option(
+    "--strict", is_flag=True, help="refuse to start (exit 4) when library versions differ"
+)
 @click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
 def rerun(run_dir: Path, lot: Path | None, out: Path | None, strict: bool, as_json: bool) -> None:
     """Repeat the run recorded in RUN, without the cache, and prove it gives the same.
@@ -240,8 +345,12 @@ def rerun(run_dir: Path, lot: Path | None, out: Path | None, strict: bool, as_js
     console.print(f"rerun of {run_dir}")
     console.print(f"new run folder: {report.rerun.run_dir}")
     if report.identical:
-        console.print(Text(f"identical ✓ ({report.compared} checksums, values and verdicts compared)",
-                           style="green"))
+        console.print(
+            Text(
+                f"identical ✓ ({report.compared} checksums, values and verdicts compared)",
+                style="green",
+            )
+        )
     else:
         table = RichTable(title="first difference per image", title_justify="left")
         for column in ("image", "what", "recorded", "now"):
@@ -249,8 +358,13 @@ def rerun(run_dir: Path, lot: Path | None, out: Path | None, strict: bool, as_js
         for d in report.first_per_image():
             table.add_row(d.image, d.what, d.recorded, d.now)
         console.print(table)
-        console.print(Text(f"DIFFERENT ✗ ({len(report.differences)} differences in "
-                           f"{report.compared} comparisons)", style="bold red"))
+        console.print(
+            Text(
+                f"DIFFERENT ✗ ({len(report.differences)} differences in "
+                f"{report.compared} comparisons)",
+                style="bold red",
+            )
+        )
     if report.environment:
         console.print("environment differences that may explain a difference:")
         for line in report.environment:
@@ -281,14 +395,27 @@ def _parse_size(text: str) -> int:
     match = re.fullmatch(r"\s*(\d+(?:\.\d+)?)\s*(B|KB|MB|GB|TB|KiB|MiB|GiB|TiB)\s*", text)
     if not match:
         raise click.BadParameter(f"{text!r}: write a size such as 500MB or 20GiB")
-    factor = {"B": 1, "KB": 1e3, "MB": 1e6, "GB": 1e9, "TB": 1e12,
-              "KiB": 1024, "MiB": 1024**2, "GiB": 1024**3, "TiB": 1024**4}[match.group(2)]
+    factor = {
+        "B": 1,
+        "KB": 1e3,
+        "MB": 1e6,
+        "GB": 1e9,
+        "TB": 1e12,
+        "KiB": 1024,
+        "MiB": 1024**2,
+        "GiB": 1024**3,
+        "TiB": 1024**4,
+    }[match.group(2)]
     return int(float(match.group(1)) * factor)
 
 
 @click.group(invoke_without_command=True)
-@click.option("--cache", type=click.Path(file_okay=False, path_type=Path), default=None,
-              help="cache folder [default: $LOTPROOF_CACHE or the user cache folder]")
+@click.option(
+    "--cache",
+    type=click.Path(file_okay=False, path_type=Path),
+    default=None,
+    help="cache folder [default: $LOTPROOF_CACHE or the user cache folder]",
+)
 @click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
 @click.pass_context
 def cache(ctx: click.Context, cache: Path | None, as_json: bool) -> None:
@@ -309,8 +436,18 @@ def cache(ctx: click.Context, cache: Path | None, as_json: bool) -> None:
 
 
 @cache.command()
-@click.option("--older-than", "older_than", default=None, help="remove entries unused for this long (e.g. 30d)")
-@click.option("--max-size", "max_size", default=None, help="then remove the least recently used down to this size (e.g. 20GB)")
+@click.option(
+    "--older-than",
+    "older_than",
+    default=None,
+    help="remove entries unused for this long (e.g. 30d)",
+)
+@click.option(
+    "--max-size",
+    "max_size",
+    default=None,
+    help="then remove the least recently used down to this size (e.g. 20GB)",
+)
 @click.pass_obj
 def prune(store: Any, older_than: str | None, max_size: str | None) -> None:
     """Remove cache entries by age and/or to a size bound."""
@@ -319,18 +456,22 @@ def prune(store: Any, older_than: str | None, max_size: str | None) -> None:
     age = _parse_age(older_than) if older_than else None
     size = _parse_size(max_size) if max_size else None
     removed, freed = store.prune(older_than_s=age, max_bytes=size)
-    stdout().print(f"removed {removed} entries, {_size_text(freed)} freed; {store.stats().entries} left")
+    stdout().print(
+        f"removed {removed} entries, {_size_text(freed)} freed; {store.stats().entries} left"
+    )
 
 
 # ---------------------------------------------------------------- demo
 
 
-
-
 @click.command()
 @click.argument("name", required=False, type=click.Choice(list(SCENARIOS)))
-@click.option("--out", type=click.Path(file_okay=False, path_type=Path), default=None,
-              help="folder that receives the run folders (default: demo_run/runs)")
+@click.option(
+    "--out",
+    type=click.Path(file_okay=False, path_type=Path),
+    default=None,
+    help="folder that receives the run folders (default: demo_run/runs)",
+)
 @click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
 def demo(name: str | None, out: Path | None, as_json: bool) -> None:
     """Run the bundled demo lots through their recipes: every scenario, or NAME.
@@ -350,5 +491,3 @@ def demo(name: str | None, out: Path | None, as_json: bool) -> None:
             raise SystemExit(code)
     if not as_json:
         stderr().print("demo finished; the verdicts above are the demo lots' own.")
-
-

@@ -31,8 +31,13 @@ __all__ = ["preview", "report"]
 @click.command()
 @click.argument("run", type=click.Path(file_okay=False, path_type=Path))
 @click.option("--pdf", is_flag=True, help="print the report to PDF with headless Chromium")
-@click.option("--out", "out", type=click.Path(dir_okay=False, path_type=Path), default=None,
-              help="file to write [default: RUN-report.html, or RUN-report.pdf with --pdf, beside RUN]")
+@click.option(
+    "--out",
+    "out",
+    type=click.Path(dir_okay=False, path_type=Path),
+    default=None,
+    help="file to write [default: RUN-report.html, or RUN-report.pdf with --pdf, beside RUN]",
+)
 def report(run: Path, pdf: bool, out: Path | None) -> None:
     """Rebuild RUN's report from its finished record, with the seal, beside the run folder.
 
@@ -58,11 +63,13 @@ def report(run: Path, pdf: bool, out: Path | None) -> None:
         raise SystemExit(EXIT_INVALID) from None
     browser = find_chromium() if pdf else None
     if pdf and browser is None:
-        stderr().print(Text(
-            "error: --pdf needs headless Chromium, which is not installed (on Debian: "
-            "apt-get install chromium); the HTML report needs nothing: run without --pdf "
-            "and print it from any browser"
-        ))
+        stderr().print(
+            Text(
+                "error: --pdf needs headless Chromium, which is not installed (on Debian: "
+                "apt-get install chromium); the HTML report needs nothing: run without --pdf "
+                "and print it from any browser"
+            )
+        )
         raise SystemExit(EXIT_NO_PDF)
     if pdf:
         with tempfile.TemporaryDirectory(prefix="lotproof-report-") as tmp:
@@ -77,7 +84,9 @@ def report(run: Path, pdf: bool, out: Path | None) -> None:
     console = stdout()
     console.print(Text(f"report: {target}"))
     if status != "intact":
-        stderr().print(Text(f"the record is {status}: see `lotproof verify {run}`", style="bold red"))
+        stderr().print(
+            Text(f"the record is {status}: see `lotproof verify {run}`", style="bold red")
+        )
         raise SystemExit(EXIT_INTEGRITY)
 
 
@@ -87,14 +96,26 @@ def report(run: Path, pdf: bool, out: Path | None) -> None:
 @click.command()
 @click.argument("recipe", type=click.Path(dir_okay=False, path_type=Path))
 @click.argument("image", type=click.Path(dir_okay=False, path_type=Path))
-@click.option("--steps", "steps", default=None, help="comma-separated steps to draw [default: every step run]")
-@click.option("--out", "out", type=click.Path(dir_okay=False, path_type=Path), required=True,
-              help="the contact sheet to write (*.png); its tile list goes beside it as *.json")
-@click.option("--cache", type=click.Path(file_okay=False, path_type=Path), default=None,
-              help="cache folder [default: $LOTPROOF_CACHE or the user cache folder]")
+@click.option(
+    "--steps", "steps", default=None, help="comma-separated steps to draw [default: every step run]"
+)
+@click.option(
+    "--out",
+    "out",
+    type=click.Path(dir_okay=False, path_type=Path),
+    required=True,
+    help="the contact sheet to write (*.png); its tile list goes beside it as *.json",
+)
+@click.option(
+    "--cache",
+    type=click.Path(file_okay=False, path_type=Path),
+    default=None,
+    help="cache folder [default: $LOTPROOF_CACHE or the user cache folder]",
+)
 @click.option("--no-cache", is_flag=True, help="compute everything, store nothing")
-def preview(recipe: Path, image: Path, steps: str | None, out: Path, cache: Path | None,
-            no_cache: bool) -> None:
+def preview(
+    recipe: Path, image: Path, steps: str | None, out: Path, cache: Path | None, no_cache: bool
+) -> None:
     """Run RECIPE on one IMAGE and draw every step's result on a contact sheet.
 
     For tuning a recipe by eye: each tile shows a step's output (gray, mask, labels,
@@ -111,7 +132,9 @@ def preview(recipe: Path, image: Path, steps: str | None, out: Path, cache: Path
     names = [s.strip() for s in steps.split(",") if s.strip()] if steps else None
     sheet = write_preview(checked, image, out, steps=names, store=open_store(cache, no_cache))
     counts = sheet.sidecar["steps"]
-    stdout().print(Text(
-        f"{out}: {len(sheet.tiles)} tiles ({out.with_suffix('.json').name} lists them); "
-        f"{counts['computed']} steps computed, {counts['reused']} reused from the cache"
-    ))
+    stdout().print(
+        Text(
+            f"{out}: {len(sheet.tiles)} tiles ({out.with_suffix('.json').name} lists them); "
+            f"{counts['computed']} steps computed, {counts['reused']} reused from the cache"
+        )
+    )

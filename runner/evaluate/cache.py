@@ -43,11 +43,11 @@ from lotproof.steps import Output, Table
 __all__ = [
     "CACHE_FORMAT",
     "ENV_VAR",
-    "Store",
-    "NullStore",
-    "DiskStore",
-    "default_cache_dir",
     "CacheStats",
+    "DiskStore",
+    "NullStore",
+    "Store",
+    "default_cache_dir",
 ]
 
 CACHE_FORMAT = "lotproof-cache/1"
@@ -105,7 +105,9 @@ def _encode(result: Any, arrays: list[np.ndarray]) -> dict[str, Any]:
     if isinstance(result, np.ndarray):
         array = np.ascontiguousarray(result)
         arrays.append(array)
-        return {"array": {"dtype": array.dtype.str, "shape": list(array.shape), "nbytes": array.nbytes}}
+        return {
+            "array": {"dtype": array.dtype.str, "shape": list(array.shape), "nbytes": array.nbytes}
+        }
     if isinstance(result, Table):
         spec: dict[str, Any] = {
             "table": [
@@ -203,14 +205,20 @@ class DiskStore:
         self.objects.mkdir(parents=True, exist_ok=True)
         marker = self.root / _MARKER
         if not marker.exists():
-            write_file(marker, canonical_json({"format": CACHE_FORMAT, "hash": "sha256"}) + b"\n", replace=True)
+            write_file(
+                marker,
+                canonical_json({"format": CACHE_FORMAT, "hash": "sha256"}) + b"\n",
+                replace=True,
+            )
         else:
             try:
                 info = json.loads(marker.read_text())
             except (OSError, ValueError):
                 info = {}
             if info.get("format") != CACHE_FORMAT:
-                raise _NotACacheFolder(f"{self.root} is not a {CACHE_FORMAT} cache folder ({_MARKER})")
+                raise _NotACacheFolder(
+                    f"{self.root} is not a {CACHE_FORMAT} cache folder ({_MARKER})"
+                )
         self._ready = True
 
     def drain_messages(self) -> list[str]:
@@ -360,8 +368,13 @@ class DiskStore:
             newest = info.st_mtime if newest is None else max(newest, info.st_mtime)
         return CacheStats(self.location, count, size, oldest, newest)
 
-    def prune(self, *, older_than_s: float | None = None, max_bytes: int | None = None,
-              now: float | None = None) -> tuple[int, int]:
+    def prune(
+        self,
+        *,
+        older_than_s: float | None = None,
+        max_bytes: int | None = None,
+        now: float | None = None,
+    ) -> tuple[int, int]:
         """Remove entries unused for ``older_than_s`` seconds, then the least recently
         used until the cache holds at most ``max_bytes``; also stale temporary files.
         Returns (entries removed, bytes freed)."""

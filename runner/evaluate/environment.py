@@ -11,24 +11,36 @@ import getpass
 import platform
 import socket
 import sys
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from typing import Any
 
 from lotproof.runner import __version__
 from lotproof.runner.evaluate.hashing import library_versions
 
-__all__ = ["LIBRARIES", "environment", "utc_now", "cpu_info", "environment_differences"]
+__all__ = ["LIBRARIES", "cpu_info", "environment", "environment_differences", "utc_now"]
 
 #: distributions whose versions every run records
 LIBRARIES = (
-    "numpy", "scipy", "scikit-image", "tifffile", "pillow", "pydantic", "PyYAML", "networkx",
-    "rfc8785", "numba", "llvmlite", "matplotlib", "cryptography", "opencv-python-headless",
+    "numpy",
+    "scipy",
+    "scikit-image",
+    "tifffile",
+    "pillow",
+    "pydantic",
+    "PyYAML",
+    "networkx",
+    "rfc8785",
+    "numba",
+    "llvmlite",
+    "matplotlib",
+    "cryptography",
+    "opencv-python-headless",
 )
 
 
 def utc_now() -> str:
     """The current time, UTC, ISO 8601 with seconds and a Z."""
-    return datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
 def cpu_info() -> dict[str, Any]:
@@ -68,10 +80,16 @@ def environment() -> dict[str, Any]:
     """The ``run-start`` fields: tool, python, libraries, platform, cpu, command, user, host."""
     return {
         "tool": {"name": "lotproof", "version": __version__},
-        "python": {"version": platform.python_version(), "implementation": platform.python_implementation()},
+        "python": {
+            "version": platform.python_version(),
+            "implementation": platform.python_implementation(),
+        },
         "libraries": library_versions(LIBRARIES),
-        "platform": {"system": platform.system(), "release": platform.release(),
-                     "machine": platform.machine()},
+        "platform": {
+            "system": platform.system(),
+            "release": platform.release(),
+            "machine": platform.machine(),
+        },
         "cpu": cpu_info(),
         "command": list(sys.argv),
         "user": _user(),
@@ -84,7 +102,9 @@ def environment_differences(recorded: dict[str, Any], current: dict[str, Any]) -
     """What differs between a recorded ``run-start`` and now, in words."""
     out = []
     if recorded.get("tool") != current.get("tool"):
-        out.append(f"lotproof {recorded.get('tool', {}).get('version')} -> {current['tool']['version']}")
+        out.append(
+            f"lotproof {recorded.get('tool', {}).get('version')} -> {current['tool']['version']}"
+        )
     old_py = recorded.get("python", {}).get("version")
     if old_py != current["python"]["version"]:
         out.append(f"Python {old_py} -> {current['python']['version']}")
@@ -98,8 +118,10 @@ def environment_differences(recorded: dict[str, Any], current: dict[str, Any]) -
     if old_cpu.get("numpy_simd") != current["cpu"]["numpy_simd"]:
         gained = sorted(set(current["cpu"]["numpy_simd"]) - set(old_cpu.get("numpy_simd", [])))
         lost = sorted(set(old_cpu.get("numpy_simd", [])) - set(current["cpu"]["numpy_simd"]))
-        out.append(f"SIMD features differ (gained {gained or 'none'}, lost {lost or 'none'}); "
-                   "float results may differ in their last bits")
+        out.append(
+            f"SIMD features differ (gained {gained or 'none'}, lost {lost or 'none'}); "
+            "float results may differ in their last bits"
+        )
     old_platform = recorded.get("platform", {})
     if old_platform.get("machine") != current["platform"]["machine"]:
         out.append(f"machine {old_platform.get('machine')} -> {current['platform']['machine']}")

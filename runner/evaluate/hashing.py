@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import hashlib
 from collections.abc import Iterable, Mapping
-from functools import lru_cache
+from functools import cache
 from importlib import metadata
 from pathlib import Path
 from typing import Any
@@ -32,12 +32,12 @@ from lotproof.steps import Output, StepParams, Table
 __all__ = [
     "KEY_FORMAT",
     "canonical_json",
-    "file_sha256",
-    "hash_array",
     "content_checksum",
+    "file_sha256",
     "float_text",
-    "library_versions",
+    "hash_array",
     "input_key",
+    "library_versions",
     "step_key",
 ]
 
@@ -105,7 +105,7 @@ def content_checksum(data: Any) -> str:
     raise TypeError(f"cannot checksum a {type(data).__name__}")
 
 
-@lru_cache(maxsize=None)
+@cache
 def _version(distribution: str) -> str:
     try:
         return metadata.version(distribution)
@@ -125,7 +125,9 @@ def library_versions(libraries: Iterable[str]) -> dict[str, str]:
 def input_key(file_sha256: str, calibration: Mapping[str, Any]) -> str:
     """Key of one input: its bytes' checksum and its calibration."""
     return _sha256(
-        canonical_json({"format": KEY_FORMAT, "file_sha256": file_sha256, "calibration": dict(calibration)})
+        canonical_json(
+            {"format": KEY_FORMAT, "file_sha256": file_sha256, "calibration": dict(calibration)}
+        )
     )
 
 

@@ -39,7 +39,7 @@ from lotproof.steps import (
 )
 from lotproof.steps.units import Volume, resolve_for_spacing
 
-__all__ = ["StepRecord", "ImageResult", "resolve_params", "analyse_sample"]
+__all__ = ["ImageResult", "StepRecord", "analyse_sample", "resolve_params"]
 
 #: relative tolerance within which an image's own calibration agrees with the recipe's
 CALIBRATION_TOLERANCE = 0.01
@@ -131,7 +131,7 @@ def _recipe_spacing(recipe: Recipe, spatial: int, shown: str) -> tuple[float, ..
 
 
 def _axes_text(sizes: tuple[float, ...]) -> str:
-    names = ("z", "y", "x")[-len(sizes):]
+    names = ("z", "y", "x")[-len(sizes) :]
     return ", ".join(f"{n} {s:.6g}" for n, s in zip(names, sizes, strict=True)) + " um"
 
 
@@ -162,7 +162,7 @@ def _spacing(recipe: Recipe, images: list[LoadedImage], result: ImageResult) -> 
         if own is None:
             continue
         own = tuple(own)
-        theirs = spacing[-len(own):]
+        theirs = spacing[-len(own) :]
         if len(own) > len(spacing) or all(
             abs(a - b) <= CALIBRATION_TOLERANCE * b for a, b in zip(own, theirs, strict=True)
         ):
@@ -241,8 +241,12 @@ def analyse_sample(
         except ValueError as err:
             return result.fail(f"step {name!r} ({step.kind}): {err}")
         keys[name] = step_key(
-            kind.name, kind.version, resolved[name], spacing,
-            [keys[source] for source in step.to], library_versions(kind.libraries),
+            kind.name,
+            kind.version,
+            resolved[name],
+            spacing,
+            [keys[source] for source in step.to],
+            library_versions(kind.libraries),
         )
 
     data: dict[str, Any] = {name: image.data for name, image in loaded.items()}
@@ -261,7 +265,13 @@ def analyse_sample(
         if hit is not None:
             out, checksum = hit
             records[name] = StepRecord(
-                name, step.kind, kind.version, key, checksum, "reused", time.perf_counter() - started
+                name,
+                step.kind,
+                kind.version,
+                key,
+                checksum,
+                "reused",
+                time.perf_counter() - started,
             )
         else:
             args = [_payload(get(source)) for source in step.to]
@@ -327,8 +337,13 @@ def analyse_sample(
         if name not in records:
             step = recipe.steps[name]
             records[name] = StepRecord(
-                name, step.kind, REGISTRY[step.kind].version, keys[name],
-                store.checksum(keys[name]), "skipped", 0.0,
+                name,
+                step.kind,
+                REGISTRY[step.kind].version,
+                keys[name],
+                store.checksum(keys[name]),
+                "skipped",
+                0.0,
             )
     result.steps = [records[n] for n in recipe.order]
     for (step_name, value_name), value in result.values.items():
@@ -343,7 +358,8 @@ def _preview(recipe: Recipe, get: Callable[[str], Any]) -> dict[str, Any]:
 
     first_input = next(iter(recipe.inputs))
     measured = next(
-        (n for n in recipe.order if REGISTRY[recipe.steps[n].kind].gives in ("table", "values")), None
+        (n for n in recipe.order if REGISTRY[recipe.steps[n].kind].gives in ("table", "values")),
+        None,
     )
     objects = None
     if measured is not None:

@@ -54,12 +54,12 @@ from lotproof.runner.recipe.patterns import check_pattern, glob_to_regex
 from lotproof.steps.units import FILE_LENGTH_UNITS, LENGTH_UNITS
 
 __all__ = [
+    "JPEG_SUFFIXES",
     "MAX_FILE_BYTES",
     "MAX_PIXELS",
     "MIN_SIDE",
-    "TIFF_SUFFIXES",
     "PNG_SUFFIXES",
-    "JPEG_SUFFIXES",
+    "TIFF_SUFFIXES",
     "Calibration",
     "LoadedImage",
     "Sample",
@@ -88,8 +88,10 @@ class Calibration:
     source: str
 
     def as_dict(self) -> dict[str, Any]:
-        return {"pixel_size_um": list(self.pixel_size_um) if self.pixel_size_um else None,
-                "source": self.source}
+        return {
+            "pixel_size_um": list(self.pixel_size_um) if self.pixel_size_um else None,
+            "source": self.source,
+        }
 
 
 @dataclass
@@ -377,9 +379,11 @@ def _decode_tiff(raw: bytes, shown: str) -> tuple[np.ndarray, bool, Calibration]
                 series = tif.series[0]
                 # before any pixel is decoded: the shape comes from the header alone
                 _check_pixels(
-                    tuple(series.shape) if len(tif.series) == 1
+                    tuple(series.shape)
+                    if len(tif.series) == 1
                     else (len(tif.series),) + tuple(series.shape),
-                    series.dtype.itemsize, shown,
+                    series.dtype.itemsize,
+                    shown,
                 )
                 _check_page_count(tif, len(pages), shown)
                 for one in tif.series:
@@ -459,12 +463,26 @@ def _decode_pillow(raw: bytes, shown: str, what: str) -> tuple[np.ndarray, bool,
             dx, dy = float(dpi[0]), float(dpi[1])
         except (TypeError, ValueError, IndexError):
             dx = dy = 0.0
-        if dx > 0 and dy > 0 and not (round(dx, 3) in _DEFAULT_DPI and round(dy, 3) in _DEFAULT_DPI):
+        if (
+            dx > 0
+            and dy > 0
+            and not (round(dx, 3) in _DEFAULT_DPI and round(dy, 3) in _DEFAULT_DPI)
+        ):
             calibration = Calibration((25400.0 / dy, 25400.0 / dx), f"{what} physical resolution")
     return data, is_color, calibration
 
 
-_ALLOWED_DTYPES = ("uint8", "uint16", "uint32", "int8", "int16", "int32", "float32", "float64", "bool")
+_ALLOWED_DTYPES = (
+    "uint8",
+    "uint16",
+    "uint32",
+    "int8",
+    "int16",
+    "int32",
+    "float32",
+    "float64",
+    "bool",
+)
 
 
 def read_image(path: Path, lot: Path, *, lossy: str = "refuse") -> LoadedImage:

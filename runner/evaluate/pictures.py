@@ -59,7 +59,9 @@ def to_display(image: np.ndarray, max_side: int = PREVIEW_SIDE) -> np.ndarray:
     return (np.clip((small - low) / (high - low), 0, 1) * 255).round().astype(np.uint8)
 
 
-def preview_arrays(image: np.ndarray, objects: np.ndarray | None, max_side: int = PREVIEW_SIDE) -> dict[str, Any]:
+def preview_arrays(
+    image: np.ndarray, objects: np.ndarray | None, max_side: int = PREVIEW_SIDE
+) -> dict[str, Any]:
     """``thumbnail`` (gray uint8) and ``overlay`` (RGB uint8: object outlines over the image)."""
     gray = to_display(image, max_side)
     out: dict[str, Any] = {"thumbnail": gray}
@@ -118,11 +120,14 @@ def label_colours(n: int) -> np.ndarray:
     q = value * (1 - saturation * frac)
     t = value * (1 - saturation * (1 - frac))
     # HSV to RGB, sector by sector
-    table = np.stack([
-        np.choose(sector, [value, q, p, p, t, value]),
-        np.choose(sector, [t, value, value, q, p, p]),
-        np.choose(sector, [p, p, t, value, value, q]),
-    ], axis=-1)
+    table = np.stack(
+        [
+            np.choose(sector, [value, q, p, p, t, value]),
+            np.choose(sector, [t, value, value, q, p, p]),
+            np.choose(sector, [p, p, t, value, value, q]),
+        ],
+        axis=-1,
+    )
     out = (table * 255).round().astype(np.uint8)
     out[0] = 0
     return out
@@ -137,7 +142,9 @@ def labels_display(labels: np.ndarray, max_side: int = PREVIEW_SIDE) -> np.ndarr
     return label_colours(int(small.max(initial=0)))[small]
 
 
-def outline_overlay(image: np.ndarray, objects: np.ndarray, max_side: int = PREVIEW_SIDE) -> np.ndarray:
+def outline_overlay(
+    image: np.ndarray, objects: np.ndarray, max_side: int = PREVIEW_SIDE
+) -> np.ndarray:
     """RGB uint8: ``objects`` (a mask or labels) outlined over ``image`` (see :func:`preview_arrays`)."""
     objects = np.asarray(objects)
     if objects.dtype == bool:

@@ -17,14 +17,14 @@ from types import MappingProxyType
 from lotproof.runner.errors import InputError, LotproofError
 
 __all__ = [
-    "Scenario",
-    "SCENARIOS",
     "DEFAULT_SCENARIO",
-    "DEMO_RECIPE",
     "DEMO_LOT",
     "DEMO_OUT",
-    "project_root",
+    "DEMO_RECIPE",
+    "SCENARIOS",
+    "Scenario",
     "demo_paths",
+    "project_root",
 ]
 
 #: Where every scenario writes its run folders.
@@ -46,32 +46,34 @@ class Scenario:
     summary: str
 
 
-SCENARIOS: Mapping[str, Scenario] = MappingProxyType({
-    s.name: s
-    for s in (
-        Scenario(
-            "filter-disc",
-            "recipes/filter-disc-porosity.yaml",
-            "demo_run/FD-2611",
-            DEMO_OUT,
-            "porosity of sintered bronze filter discs, 2D cross-sections (lot FD-2611)",
-        ),
-        Scenario(
-            "powder",
-            "recipes/powder-size.yaml",
-            "demo_run/powder/PW-2612",
-            DEMO_OUT,
-            "particle size and fines of a gas-atomised powder, touching particles (lot PW-2612)",
-        ),
-        Scenario(
-            "lattice",
-            "recipes/lattice-voids.yaml",
-            "demo_run/lattice/LC-2612",
-            DEMO_OUT,
-            "gas voids in additively made lattice struts, 3D CT volumes",
-        ),
-    )
-})
+SCENARIOS: Mapping[str, Scenario] = MappingProxyType(
+    {
+        s.name: s
+        for s in (
+            Scenario(
+                "filter-disc",
+                "recipes/filter-disc-porosity.yaml",
+                "demo_run/FD-2611",
+                DEMO_OUT,
+                "porosity of sintered bronze filter discs, 2D cross-sections (lot FD-2611)",
+            ),
+            Scenario(
+                "powder",
+                "recipes/powder-size.yaml",
+                "demo_run/powder/PW-2612",
+                DEMO_OUT,
+                "particle size and fines of a gas-atomised powder, touching particles (lot PW-2612)",
+            ),
+            Scenario(
+                "lattice",
+                "recipes/lattice-voids.yaml",
+                "demo_run/lattice/LC-2612",
+                DEMO_OUT,
+                "gas voids in additively made lattice struts, 3D CT volumes",
+            ),
+        )
+    }
+)
 
 #: The scenario :func:`demo_paths` gives when called without a name.
 DEFAULT_SCENARIO = "filter-disc"
@@ -112,9 +114,7 @@ def demo_paths(name: str | None = None) -> tuple[Path, Path, Path]:
     scenario = SCENARIOS.get(key)
     if scenario is None:
         # a wrong name on the command line: exit 2, nothing ran
-        raise LotproofError(
-            f"no demo scenario {key!r}; the scenarios are {', '.join(SCENARIOS)}"
-        )
+        raise LotproofError(f"no demo scenario {key!r}; the scenarios are {', '.join(SCENARIOS)}")
     root = project_root()
     recipe, lot = root / scenario.recipe, root / scenario.lot
     if not recipe.is_file() or not lot.is_dir():

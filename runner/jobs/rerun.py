@@ -27,7 +27,7 @@ from lotproof.runner.record.layout import IMAGES_FILE, OBJECTS_FILE, RECIPE_FILE
 from lotproof.runner.record.reading import RunFolder
 from lotproof.runner.record.verify import verify_run
 
-__all__ = ["RerunRefused", "Difference", "RerunReport", "rerun"]
+__all__ = ["Difference", "RerunRefused", "RerunReport", "rerun"]
 
 
 class RerunRefused(LotproofError):
@@ -106,7 +106,9 @@ def _index_by_checksum(root: Path, wanted: dict[str, int]) -> dict[str, Path]:
     return found
 
 
-def _locate_inputs(events: list[dict[str, Any]], recorded_lot: Path, lot: Path | None) -> tuple[Path, list[Sample]]:
+def _locate_inputs(
+    events: list[dict[str, Any]], recorded_lot: Path, lot: Path | None
+) -> tuple[Path, list[Sample]]:
     inputs = [e for e in events if e["type"] == "input"]
     images = [e for e in events if e["type"] == "image"]
     base = lot or recorded_lot
@@ -118,7 +120,9 @@ def _locate_inputs(events: list[dict[str, Any]], recorded_lot: Path, lot: Path |
         if candidate.is_file() and file_sha256(candidate) == e["sha256"]:
             located[(e["image"], e["input"])] = candidate
         elif candidate.is_file():
-            changed.append(f"{e['path']} (sha256 now {file_sha256(candidate)[:16]}..., recorded {e['sha256'][:16]}...)")
+            changed.append(
+                f"{e['path']} (sha256 now {file_sha256(candidate)[:16]}..., recorded {e['sha256'][:16]}...)"
+            )
         else:
             missing.append(e["path"])
     unresolved = [e for e in inputs if (e["image"], e["input"]) not in located]
@@ -136,9 +140,12 @@ def _locate_inputs(events: list[dict[str, Any]], recorded_lot: Path, lot: Path |
             parts.append("missing: " + ", ".join(missing))
         if changed:
             parts.append("changed: " + ", ".join(changed))
-        where = f"under {lot}" if lot else f"in {recorded_lot} (give --lot DIR to search by checksum)"
+        where = (
+            f"under {lot}" if lot else f"in {recorded_lot} (give --lot DIR to search by checksum)"
+        )
         raise RerunRefused(
-            "the recorded inputs are not all there " + where + "; " + "; ".join(parts), EXIT_BAD_INPUT
+            "the recorded inputs are not all there " + where + "; " + "; ".join(parts),
+            EXIT_BAD_INPUT,
         )
     by_image: dict[str, dict[str, Path]] = defaultdict(dict)
     for (image, name), path in located.items():
@@ -154,7 +161,9 @@ def _locate_inputs(events: list[dict[str, Any]], recorded_lot: Path, lot: Path |
     return base, samples
 
 
-def rerun(run_dir: Path, *, lot: Path | None = None, out: Path | None = None, strict: bool = False) -> RerunReport:
+def rerun(
+    run_dir: Path, *, lot: Path | None = None, out: Path | None = None, strict: bool = False
+) -> RerunReport:
     """Repeat the run recorded in ``run_dir`` and compare (see the module docstring)."""
     run_dir = Path(run_dir)
     report = verify_run(run_dir)
@@ -171,7 +180,8 @@ def rerun(run_dir: Path, *, lot: Path | None = None, out: Path | None = None, st
         versions = [d for d in env_diffs if not d.startswith(("CPU", "SIMD", "machine"))]
         if versions:
             raise RerunRefused(
-                "--strict: the software differs from the record: " + "; ".join(versions), EXIT_INTEGRITY
+                "--strict: the software differs from the record: " + "; ".join(versions),
+                EXIT_INTEGRITY,
             )
     base, samples = _locate_inputs(events, Path(start.get("lot", ".")), lot)
     # A sample that was never read keeps its one recorded path under the recipe's first input.
@@ -183,7 +193,11 @@ def rerun(run_dir: Path, *, lot: Path | None = None, out: Path | None = None, st
             if missing:
                 sample.problem = f"no file for input(s) {', '.join(missing)}"
     summary = run_lot(
-        recipe, base, out or run_dir.parent, store=NullStore(), samples=samples,
+        recipe,
+        base,
+        out or run_dir.parent,
+        store=NullStore(),
+        samples=samples,
         rerun_of=report.seal,
     )
     result = RerunReport(original=run_dir, rerun=summary, environment=env_diffs)
@@ -191,9 +205,15 @@ def rerun(run_dir: Path, *, lot: Path | None = None, out: Path | None = None, st
     return result
 
 
-def _compare(folder: RunFolder, events: list[dict[str, Any]], summary: RunSummary, report: RerunReport) -> None:
-    recorded_steps = {(e["image"], e["step"]): e.get("checksum") for e in events if e["type"] == "step"}
-    recorded_status = {e["image"]: (e["status"], e["reason"]) for e in events if e["type"] == "image"}
+def _compare(
+    folder: RunFolder, events: list[dict[str, Any]], summary: RunSummary, report: RerunReport
+) -> None:
+    recorded_steps = {
+        (e["image"], e["step"]): e.get("checksum") for e in events if e["type"] == "step"
+    }
+    recorded_status = {
+        e["image"]: (e["status"], e["reason"]) for e in events if e["type"] == "image"
+    }
     order = summary.recipe.order
     for r in summary.results:
         status = recorded_status.get(r.id)
@@ -201,7 +221,9 @@ def _compare(folder: RunFolder, events: list[dict[str, Any]], summary: RunSummar
             report.differences.append(Difference(r.id, "image", "not in the record", r.status))
             continue
         if status[0] != r.status:
-            report.differences.append(Difference(r.id, "status", status[0], f"{r.status} ({r.reason})"))
+            report.differences.append(
+                Difference(r.id, "status", status[0], f"{r.status} ({r.reason})")
+            )
         new = {rec.step: rec.checksum for rec in r.steps}
         for step in order:
             old = recorded_steps.get((r.id, step))
@@ -210,14 +232,21 @@ def _compare(folder: RunFolder, events: list[dict[str, Any]], summary: RunSummar
             report.compared += 1
             if old != new[step]:
                 report.differences.append(
-                    Difference(r.id, f"step {step} result checksum", old[:16] + "...", new[step][:16] + "...")
+                    Difference(
+                        r.id,
+                        f"step {step} result checksum",
+                        old[:16] + "...",
+                        new[step][:16] + "...",
+                    )
                 )
     rerun_folder = RunFolder(summary.run_dir)
     for name in (IMAGES_FILE, OBJECTS_FILE):
         old_header, old_rows = folder.csv(name)
         new_header, new_rows = rerun_folder.csv(name)
         if old_header != new_header:
-            report.differences.append(Difference("(lot)", f"{name} columns", ",".join(old_header), ",".join(new_header)))
+            report.differences.append(
+                Difference("(lot)", f"{name} columns", ",".join(old_header), ",".join(new_header))
+            )
             continue
         for i, (old, new) in enumerate(zip(old_rows, new_rows, strict=False)):
             for column, a, b in zip(old_header, old, new, strict=True):
@@ -227,13 +256,19 @@ def _compare(folder: RunFolder, events: list[dict[str, Any]], summary: RunSummar
                     where = column if name == IMAGES_FILE else f"object row {i + 1}: {column}"
                     report.differences.append(Difference(image, where, a, b))
         if len(old_rows) != len(new_rows):
-            report.differences.append(Difference("(lot)", f"{name} rows", str(len(old_rows)), str(len(new_rows))))
+            report.differences.append(
+                Difference("(lot)", f"{name} rows", str(len(old_rows)), str(len(new_rows)))
+            )
     recorded_verdicts = {e["limit"]: e["verdict"] for e in events if e["type"] == "verdict"}
     for name, lv in summary.verdicts.limits.items():
         report.compared += 1
         if recorded_verdicts.get(name) != lv.verdict:
-            report.differences.append(Difference("(lot)", f"limit {name}", str(recorded_verdicts.get(name)), lv.verdict))
+            report.differences.append(
+                Difference("(lot)", f"limit {name}", str(recorded_verdicts.get(name)), lv.verdict)
+            )
     lot_verdict = next((e["verdict"] for e in events if e["type"] == "lot-verdict"), None)
     report.compared += 1
     if lot_verdict != summary.verdicts.lot:
-        report.differences.append(Difference("(lot)", "lot verdict", str(lot_verdict), summary.verdicts.lot))
+        report.differences.append(
+            Difference("(lot)", "lot verdict", str(lot_verdict), summary.verdicts.lot)
+        )

@@ -84,9 +84,7 @@ class RunSummary:
                     "unit": lv.unit,
                     "bound": lv.bound_text(),
                     "verdict": lv.verdict,
-                    "images": {
-                        image: verdict for image, (_, verdict) in lv.per_image.items()
-                    },
+                    "images": {image: verdict for image, (_, verdict) in lv.per_image.items()},
                 }
                 for name, lv in self.verdicts.limits.items()
             },
@@ -123,21 +121,50 @@ def _image_events(ledger: LedgerWriter, recipe: Recipe, result: ImageResult) -> 
     """One image's events (inputs, steps, the image), made durable together."""
     events: list[tuple[str, dict[str, Any]]] = []
     for item in result.inputs:
-        events.append(("input", {
-            "image": result.id, "input": item["input"], "path": item["path"], "size": item["size"],
-            "sha256": item["sha256"], "shape": item["shape"], "dtype": item["dtype"],
-            "calibration": item["calibration"],
-        }))
+        events.append(
+            (
+                "input",
+                {
+                    "image": result.id,
+                    "input": item["input"],
+                    "path": item["path"],
+                    "size": item["size"],
+                    "sha256": item["sha256"],
+                    "shape": item["shape"],
+                    "dtype": item["dtype"],
+                    "calibration": item["calibration"],
+                },
+            )
+        )
     for record in result.steps:
-        events.append(("step", {
-            "image": result.id, "step": record.step, "kind": record.kind, "version": record.version,
-            "to": list(recipe.steps[record.step].to), "key": record.key, "checksum": record.checksum,
-            "cache": record.cache, "seconds": round(record.seconds, 6),
-        }))
-    events.append(("image", {
-        "image": result.id, "status": result.status, "reason": result.reason,
-        "worker": result.worker, "notes": list(result.notes),
-    }))
+        events.append(
+            (
+                "step",
+                {
+                    "image": result.id,
+                    "step": record.step,
+                    "kind": record.kind,
+                    "version": record.version,
+                    "to": list(recipe.steps[record.step].to),
+                    "key": record.key,
+                    "checksum": record.checksum,
+                    "cache": record.cache,
+                    "seconds": round(record.seconds, 6),
+                },
+            )
+        )
+    events.append(
+        (
+            "image",
+            {
+                "image": result.id,
+                "status": result.status,
+                "reason": result.reason,
+                "worker": result.worker,
+                "notes": list(result.notes),
+            },
+        )
+    )
     ledger.append_group(events)
 
 
@@ -195,8 +222,12 @@ def run_lot(
         start["executor"] = executor.description
         ledger.append("run-start", **start)
         ledger.append(
-            "recipe", path=recipe.path, sha256=recipe.sha256, name=recipe.name,
-            revision=recipe.revision, git=git_info(Path(recipe.path)),
+            "recipe",
+            path=recipe.path,
+            sha256=recipe.sha256,
+            name=recipe.name,
+            revision=recipe.revision,
+            git=git_info(Path(recipe.path)),
         )
         if on_start is not None:
             on_start(len(samples))
@@ -216,8 +247,13 @@ def run_lot(
         files = write_run_files(run_dir, recipe, results, verdicts, lot) + sorted(figures)
         for name, lv in verdicts.limits.items():
             ledger.append(
-                "verdict", limit=name, value=lv.value, unit=lv.unit, over=lv.over,
-                bound=lv.bound_text(), verdict=lv.verdict,
+                "verdict",
+                limit=name,
+                value=lv.value,
+                unit=lv.unit,
+                over=lv.over,
+                bound=lv.bound_text(),
+                verdict=lv.verdict,
             )
         ledger.append("lot-verdict", verdict=verdicts.lot)
         files.append(write_report(run_dir))

@@ -49,7 +49,12 @@ class LotExecutor(Protocol):
     description: str
 
     def map(
-        self, recipe: Recipe, samples: list[Sample], lot: Path, store: Store, on_image: OnImage | None
+        self,
+        recipe: Recipe,
+        samples: list[Sample],
+        lot: Path,
+        store: Store,
+        on_image: OnImage | None,
     ) -> list[ImageResult]:
         """Analyse every sample; results in the samples' order; one failure never stops the rest."""
 
@@ -80,7 +85,12 @@ def analyse_task(recipe: Recipe, sample: Sample, lot: Path, store: Store) -> Ima
 
 
 #: environment that keeps BLAS/OpenMP/numba to one thread per worker process
-SINGLE_THREAD_ENV = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "NUMBA_NUM_THREADS")
+SINGLE_THREAD_ENV = (
+    "OMP_NUM_THREADS",
+    "OPENBLAS_NUM_THREADS",
+    "MKL_NUM_THREADS",
+    "NUMBA_NUM_THREADS",
+)
 
 
 class single_thread_environment:

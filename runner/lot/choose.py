@@ -16,7 +16,7 @@ from contextlib import contextmanager
 from lotproof.runner.lot.base import ExecutorError, LotExecutor
 from lotproof.runner.lot.local import LocalExecutor
 
-__all__ = ["EXECUTOR_KINDS", "ExecutorError", "make_executor", "open_executor", "close_executor"]
+__all__ = ["EXECUTOR_KINDS", "ExecutorError", "close_executor", "make_executor", "open_executor"]
 
 #: the executors ``--executor`` chooses from
 EXECUTOR_KINDS: tuple[str, ...] = ("local", "dask", "dask-local")
@@ -55,7 +55,9 @@ def make_executor(
         installed.
     """
     if kind not in EXECUTOR_KINDS:
-        raise ExecutorError(f"unknown executor {kind!r} (choose one of {', '.join(EXECUTOR_KINDS)})")
+        raise ExecutorError(
+            f"unknown executor {kind!r} (choose one of {', '.join(EXECUTOR_KINDS)})"
+        )
     if scheduler is not None and kind != "dask":
         raise ExecutorError(f"--scheduler goes with --executor dask, not {kind}")
     if workers is not None and kind != "dask-local":

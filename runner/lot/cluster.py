@@ -47,7 +47,7 @@ from lotproof.runner.lot.base import (
 from lotproof.runner.recipe.load import parse_recipe
 from lotproof.runner.recipe.model import Recipe
 
-__all__ = ["DaskExecutor", "ALLOWED_FAILURES", "software_fingerprint"]
+__all__ = ["ALLOWED_FAILURES", "DaskExecutor", "software_fingerprint"]
 
 #: times a task may lose its worker and be given to another (a cluster started here)
 ALLOWED_FAILURES = 1
@@ -198,7 +198,9 @@ class DaskExecutor:
             try:
                 self.client = distributed.Client(scheduler, timeout=connect_timeout)
             except (OSError, TimeoutError) as err:
-                raise ExecutorError(f"cannot reach the dask scheduler at {scheduler}: {err}") from None
+                raise ExecutorError(
+                    f"cannot reach the dask scheduler at {scheduler}: {err}"
+                ) from None
             where = f"dask, scheduler {self.client.scheduler.address}"
         else:
             n = max(1, int(workers))  # type: ignore[arg-type]
@@ -228,7 +230,12 @@ class DaskExecutor:
             self._cluster = None
 
     def map(
-        self, recipe: Recipe, samples: list[Sample], lot: Path, store: Store, on_image: OnImage | None
+        self,
+        recipe: Recipe,
+        samples: list[Sample],
+        lot: Path,
+        store: Store,
+        on_image: OnImage | None,
     ) -> list[ImageResult]:
         """One task per image; results in the samples' order, ``on_image`` as they finish."""
         from distributed import as_completed
@@ -323,10 +330,13 @@ def _outcome(sample: Sample, future: Any, outcome: Any, retried: int) -> ImageRe
 def _local_cluster(distributed: Any, n_workers: int) -> Any:
     import dask
 
-    pinned = {name: "1" for name in SINGLE_THREAD_ENV}
+    pinned = dict.fromkeys(SINGLE_THREAD_ENV, "1")
     # one task per worker at a time: a worker that dies then takes only the image it
     # was analysing with it, never a queued one
-    with single_thread_environment(), dask.config.set({"distributed.scheduler.worker-saturation": 1.0}):
+    with (
+        single_thread_environment(),
+        dask.config.set({"distributed.scheduler.worker-saturation": 1.0}),
+    ):
         return distributed.LocalCluster(
             n_workers=n_workers,
             threads_per_worker=1,
@@ -335,6 +345,9 @@ def _local_cluster(distributed: Any, n_workers: int) -> Any:
             dashboard_address=None,
             # the scheduler always serves HTTP (health, metrics; no dashboard here): on a free
             # loopback port, not dask's usual 8787, which another cluster may hold
-            scheduler_kwargs={"allowed_failures": ALLOWED_FAILURES, "dashboard_address": "127.0.0.1:0"},
+            scheduler_kwargs={
+                "allowed_failures": ALLOWED_FAILURES,
+                "dashboard_address": "127.0.0.1:0",
+            },
             env=pinned,  # also for workers the nanny restarts later
         )

@@ -63,7 +63,12 @@ class LocalExecutor:
         self.description = f"local, {self.jobs} process{'es' if self.jobs != 1 else ''}"
 
     def map(
-        self, recipe: Recipe, samples: list[Sample], lot: Path, store: Store, on_image: OnImage | None
+        self,
+        recipe: Recipe,
+        samples: list[Sample],
+        lot: Path,
+        store: Store,
+        on_image: OnImage | None,
     ) -> list[ImageResult]:
         if self.jobs <= 1 or len(samples) <= 1:
             results = []
@@ -76,7 +81,12 @@ class LocalExecutor:
         return self._pool_map(recipe, samples, lot, store, on_image)
 
     def _pool_map(
-        self, recipe: Recipe, samples: list[Sample], lot: Path, store: Store, on_image: OnImage | None
+        self,
+        recipe: Recipe,
+        samples: list[Sample],
+        lot: Path,
+        store: Store,
+        on_image: OnImage | None,
     ) -> list[ImageResult]:
         import concurrent.futures as cf
         import concurrent.futures.process  # noqa: F401  (BrokenProcessPool)
@@ -101,7 +111,9 @@ class LocalExecutor:
                         pending[pool.submit(_worker_task, sample, str(lot))] = index
                     except cf.process.BrokenProcessPool as err:
                         # a worker died and took the pool with it: what is left is incomplete
-                        result = ImageResult(id=sample.id).fail(f"not analysed: the worker pool stopped ({err})")
+                        result = ImageResult(id=sample.id).fail(
+                            f"not analysed: the worker pool stopped ({err})"
+                        )
                         results[index] = result
                         if on_image is not None:
                             on_image(result)

@@ -26,7 +26,7 @@ from lotproof.runner.recipe.model import Recipe, StepDef
 from lotproof.steps import Area, Length, resolve_to_px
 from lotproof.steps.units import AREA_UNITS, LENGTH_UNITS
 
-__all__ = ["Change", "RecipeDiff", "read_recipe_source", "diff_recipes"]
+__all__ = ["Change", "RecipeDiff", "diff_recipes", "read_recipe_source"]
 
 
 @dataclass(frozen=True)
@@ -69,8 +69,13 @@ class RecipeDiff:
     def identical(self) -> bool:
         """No semantic change (the bytes may still differ in comments or layout)."""
         return not (
-            self.top or self.steps_added or self.steps_removed or self.steps_changed
-            or self.limits_added or self.limits_removed or self.limits_changed
+            self.top
+            or self.steps_added
+            or self.steps_removed
+            or self.steps_changed
+            or self.limits_added
+            or self.limits_removed
+            or self.limits_changed
         )
 
     def as_dict(self) -> dict[str, Any]:
@@ -182,23 +187,42 @@ def _compare_steps(a: Recipe, b: Recipe, diff: RecipeDiff) -> None:
             continue
         fa, fb = _step_fields(a.steps[name]), _step_fields(b.steps[name])
         if fa["apply"] != fb["apply"]:
-            diff.steps_changed.append(Change(f"steps.{name}.apply", fa["apply"], fb["apply"],
-                                             "another step kind; its parameters are not compared"))
+            diff.steps_changed.append(
+                Change(
+                    f"steps.{name}.apply",
+                    fa["apply"],
+                    fb["apply"],
+                    "another step kind; its parameters are not compared",
+                )
+            )
             continue
         for key in fa:
             va, vb = fa[key], fb[key]
             if _normal(va) == _normal(vb):
-                if (isinstance(va, (Length, Area)) and pa != pb and pa is not None
-                        and pb is not None and va.unit not in ("px", "px2")):
-                    diff.steps_changed.append(Change(
-                        f"steps.{name}.{key}", _shown(va, pa), _shown(vb, pb),
-                        "same size, other pixels: the pixel size changed",
-                    ))
+                if (
+                    isinstance(va, (Length, Area))
+                    and pa != pb
+                    and pa is not None
+                    and pb is not None
+                    and va.unit not in ("px", "px2")
+                ):
+                    diff.steps_changed.append(
+                        Change(
+                            f"steps.{name}.{key}",
+                            _shown(va, pa),
+                            _shown(vb, pb),
+                            "same size, other pixels: the pixel size changed",
+                        )
+                    )
                 continue
             note = ""
-            if (isinstance(va, (Length, Area)) and isinstance(vb, (Length, Area))
-                    and pa is not None and pb is not None
-                    and resolve_to_px(va, pa).value == resolve_to_px(vb, pb).value):
+            if (
+                isinstance(va, (Length, Area))
+                and isinstance(vb, (Length, Area))
+                and pa is not None
+                and pb is not None
+                and resolve_to_px(va, pa).value == resolve_to_px(vb, pb).value
+            ):
                 note = "written in other units, the same in pixels at these pixel sizes"
             diff.steps_changed.append(
                 Change(f"steps.{name}.{key}", _shown(va, pa), _shown(vb, pb), note)
@@ -222,11 +246,13 @@ def _compare_limits(a: Recipe, b: Recipe, diff: RecipeDiff) -> None:
             if va == vb:
                 continue
             unit = lb.unit if key in ("min", "max") and lb.unit != "-" else ""
-            diff.limits_changed.append(Change(
-                f"limits.{name}.{key}",
-                f"{va:g} {unit}".strip() if isinstance(va, float) else va,
-                f"{vb:g} {unit}".strip() if isinstance(vb, float) else vb,
-            ))
+            diff.limits_changed.append(
+                Change(
+                    f"limits.{name}.{key}",
+                    f"{va:g} {unit}".strip() if isinstance(va, float) else va,
+                    f"{vb:g} {unit}".strip() if isinstance(vb, float) else vb,
+                )
+            )
 
 
 def _compare_top(a: Recipe, b: Recipe, diff: RecipeDiff) -> None:
@@ -259,15 +285,20 @@ def diff_recipes(a: str, b: str) -> RecipeDiff:
     raw_a, shown_a = read_recipe_source(a)
     raw_b, shown_b = read_recipe_source(b)
     ra, rb = parse_recipe(raw_a, shown_a), parse_recipe(raw_b, shown_b)
-    diff = RecipeDiff(a=shown_a, b=shown_b, a_label=ra.label, b_label=rb.label,
-                      bytes_differ=raw_a != raw_b)
+    diff = RecipeDiff(
+        a=shown_a, b=shown_b, a_label=ra.label, b_label=rb.label, bytes_differ=raw_a != raw_b
+    )
     _compare_top(ra, rb, diff)
     _compare_steps(ra, rb, diff)
     _compare_limits(ra, rb, diff)
     meaning_changed = bool(
         [c for c in diff.top if c.where != "revision"]
-        or diff.steps_added or diff.steps_removed or diff.steps_changed
-        or diff.limits_added or diff.limits_removed or diff.limits_changed
+        or diff.steps_added
+        or diff.steps_removed
+        or diff.steps_changed
+        or diff.limits_added
+        or diff.limits_removed
+        or diff.limits_changed
     )
     if meaning_changed and ra.name == rb.name and ra.revision == rb.revision:
         diff.warnings.append(

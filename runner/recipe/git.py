@@ -96,8 +96,9 @@ def git_info(path: Path) -> dict[str, Any] | None:
     if commit is None:
         return {"commit": None, "path_in_repo": relative, "modified": True}
     in_commit = run_git(top_path, "ls-tree", "--name-only", commit, "--", relative)
-    status = run_git(top_path, "status", "--porcelain=v1", "--untracked-files=all", "--ignored",
-                  "--", relative)
+    status = run_git(
+        top_path, "status", "--porcelain=v1", "--untracked-files=all", "--ignored", "--", relative
+    )
     if in_commit is None or status is None:
         return None
     modified = not in_commit.strip() or bool(status.strip())

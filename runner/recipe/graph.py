@@ -48,7 +48,11 @@ def run_order(graph: nx.DiGraph, names: set[str]) -> tuple[str, ...]:
 
 
 def resolve_graph(
-    recipe: Recipe, collector: ProblemCollector, *, strict: bool, declared: frozenset[str] = frozenset()
+    recipe: Recipe,
+    collector: ProblemCollector,
+    *,
+    strict: bool,
+    declared: frozenset[str] = frozenset(),
 ) -> Recipe:
     """Check the graph of ``recipe``, adding problems to ``collector``.
 
@@ -78,13 +82,15 @@ def resolve_graph(
         kind = REGISTRY[step.kind]
         if not kind.input_count_ok(len(step.to)):
             need = f"at least {len(kind.takes)}" if kind.variadic else str(len(kind.takes))
-            collector.add(("steps", name, "to"), f"{step.kind} takes {need} input(s), got {len(step.to)}")
+            collector.add(
+                ("steps", name, "to"), f"{step.kind} takes {need} input(s), got {len(step.to)}"
+            )
 
     cyclic = _report_cycles(graph, collector)
     if cyclic or not strict:
         return recipe
 
-    kinds: dict[str, str] = {name: INPUT_KIND for name in recipe.inputs}
+    kinds: dict[str, str] = dict.fromkeys(recipe.inputs, INPUT_KIND)
     for name in run_order(graph, set(graph.nodes)):
         if name in recipe.inputs:
             continue
@@ -100,9 +106,7 @@ def resolve_graph(
             if got not in accepted:
                 where = ("steps", name, "to") if len(step.to) == 1 else ("steps", name, "to", i)
                 takes = " or ".join(sorted(accepted))
-                collector.add(
-                    where, f"{step.kind} takes {takes}, but {source!r} gives {got}"
-                )
+                collector.add(where, f"{step.kind} takes {takes}, but {source!r} gives {got}")
                 ok = False
         if ok:
             kinds[name] = kind.output_kind([g for g in given if g is not None])
@@ -123,9 +127,7 @@ def resolve_graph(
             "nothing to run: no step measures, none is kept (keep: true) and no limit needs one",
         )
     unused = tuple(sorted(set(recipe.steps) - needed))
-    return dataclasses.replace(
-        recipe, order=run_order(graph, needed), unused=unused, kinds=kinds
-    )
+    return dataclasses.replace(recipe, order=run_order(graph, needed), unused=unused, kinds=kinds)
 
 
 def _report_cycles(graph: nx.DiGraph, collector: ProblemCollector) -> bool:
@@ -139,8 +141,6 @@ def _report_cycles(graph: nx.DiGraph, collector: ProblemCollector) -> bool:
         found = True
         names = [edge[0] for edge in cycle] + [cycle[0][0]]
         first = min(names[:-1])
-        collector.add(
-            ("steps", first, "to"), "steps form a cycle: " + " -> ".join(names)
-        )
+        collector.add(("steps", first, "to"), "steps form a cycle: " + " -> ".join(names))
         work.remove_edge(*cycle[0][:2])
     return found

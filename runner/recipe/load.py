@@ -35,8 +35,6 @@ from lotproof.steps import REGISTRY
 __all__ = ["load_recipe", "parse_recipe"]
 
 
-
-
 def load_recipe(path: str | Path) -> Recipe:
     """Read and fully check the recipe at ``path``.
 
@@ -52,20 +50,44 @@ def load_recipe(path: str | Path) -> Recipe:
         if path.is_dir():
             raise IsADirectoryError
         if not stat.S_ISREG(info.st_mode):
-            raise RecipeError([Problem(shown, 1, 1, "", "not a regular file (a pipe or a device?); "
-                                       "a recipe is a file")])
+            raise RecipeError(
+                [
+                    Problem(
+                        shown,
+                        1,
+                        1,
+                        "",
+                        "not a regular file (a pipe or a device?); a recipe is a file",
+                    )
+                ]
+            )
         size = info.st_size
         if size > MAX_RECIPE_BYTES:
             raise RecipeError(
-                [Problem(shown, 1, 1, "", f"the file is {size} bytes; a recipe is at most "
-                         f"{MAX_RECIPE_BYTES} bytes")]
+                [
+                    Problem(
+                        shown,
+                        1,
+                        1,
+                        "",
+                        f"the file is {size} bytes; a recipe is at most {MAX_RECIPE_BYTES} bytes",
+                    )
+                ]
             )
         with open(path, "rb") as handle:
             raw = handle.read(MAX_RECIPE_BYTES + 1)  # bounded even if the file grows meanwhile
         if len(raw) > MAX_RECIPE_BYTES:
             raise RecipeError(
-                [Problem(shown, 1, 1, "", f"the file is over {MAX_RECIPE_BYTES} bytes; a recipe is "
-                         f"at most {MAX_RECIPE_BYTES} bytes")]
+                [
+                    Problem(
+                        shown,
+                        1,
+                        1,
+                        "",
+                        f"the file is over {MAX_RECIPE_BYTES} bytes; a recipe is "
+                        f"at most {MAX_RECIPE_BYTES} bytes",
+                    )
+                ]
             )
     except FileNotFoundError:
         raise RecipeError([Problem(shown, 1, 1, "", "no such file")]) from None
@@ -84,8 +106,15 @@ def _decode(raw: bytes, file: str) -> str:
         line = before.count(b"\n") + 1
         column = err.start - (before.rfind(b"\n") + 1) + 1
         raise RecipeError(
-            [Problem(file, line, column, "", f"not UTF-8 text (byte 0x{raw[err.start]:02x}); "
-                     "save the recipe as UTF-8")]
+            [
+                Problem(
+                    file,
+                    line,
+                    column,
+                    "",
+                    f"not UTF-8 text (byte 0x{raw[err.start]:02x}); save the recipe as UTF-8",
+                )
+            ]
         ) from None
     return text.removeprefix("\ufeff")
 
@@ -101,11 +130,15 @@ def parse_recipe(raw: bytes, file: str = "<recipe>") -> Recipe:
         raise RecipeError(collector.problems)
     data = loaded.data
     if not isinstance(data, dict):
-        collector.add((), f"a recipe is a mapping of keys (format, name, steps, ...), got {describe(data)}")
+        collector.add(
+            (), f"a recipe is a mapping of keys (format, name, steps, ...), got {describe(data)}"
+        )
         raise RecipeError(collector.problems)
     if "format" in data and data["format"] != FORMAT:
-        collector.add(("format",), f"{data['format']!r} is not a format this version reads; "
-                      f"write format: {FORMAT}")
+        collector.add(
+            ("format",),
+            f"{data['format']!r} is not a format this version reads; write format: {FORMAT}",
+        )
         data = {k: v for k, v in data.items() if k != "format"} | {"format": FORMAT}
 
     top_fields = list(RecipeModel.model_fields)
@@ -148,12 +181,15 @@ def parse_recipe(raw: bytes, file: str = "<recipe>") -> Recipe:
         calibration=model.calibration,
     )
     if recipe.pixel_size is not None and recipe.pixel_size.unit == "px":
-        collector.add(("pixel_size",), "the pixel size must be a physical length (e.g. 0.65 um), "
-                      "or from-image")
+        collector.add(
+            ("pixel_size",),
+            "the pixel size must be a physical length (e.g. 0.65 um), or from-image",
+        )
     for axis, size in enumerate(recipe.voxel_size or ()):
         if size.unit == "px":
-            collector.add(("voxel_size", axis), "a voxel size must be a physical length "
-                          "(e.g. 0.8 um)")
+            collector.add(
+                ("voxel_size", axis), "a voxel size must be a physical length (e.g. 0.8 um)"
+            )
     limits: dict[str, LimitDef] = {}
     for name, limit in model.limits.items():
         checked_limit = _check_limit(name, limit, recipe, collector)
@@ -165,18 +201,31 @@ def parse_recipe(raw: bytes, file: str = "<recipe>") -> Recipe:
     return recipe
 
 
-def _partial_recipe(file: str, raw: bytes, data: dict[str, Any], steps: dict[str, StepDef]) -> Recipe:
+def _partial_recipe(
+    file: str, raw: bytes, data: dict[str, Any], steps: dict[str, StepDef]
+) -> Recipe:
     inputs = {k: v for k, v in data["inputs"].items() if isinstance(k, str)}
     return Recipe(
-        path=file, raw=raw, sha256="", name="", revision=0, summary="", pixel_size=None,
-        lossy_input="refuse", inputs=inputs, steps=steps, limits={},
+        path=file,
+        raw=raw,
+        sha256="",
+        name="",
+        revision=0,
+        summary="",
+        pixel_size=None,
+        lossy_input="refuse",
+        inputs=inputs,
+        steps=steps,
+        limits={},
     )
 
 
 def _check_step(name: str, spec: Any, collector: ProblemCollector) -> StepDef | None:
     path = ("steps", name)
     if not isinstance(spec, dict):
-        collector.add(path, f"a step is a mapping with apply, to and its parameters, got {describe(spec)}")
+        collector.add(
+            path, f"a step is a mapping with apply, to and its parameters, got {describe(spec)}"
+        )
         return None
     kind_name = spec.get("apply")
     if kind_name is None:
@@ -228,12 +277,16 @@ def _check_step(name: str, spec: Any, collector: ProblemCollector) -> StepDef | 
     return StepDef(name=name, kind=kind_name, to=targets, keep=keep, params=params)
 
 
-def _check_limit(name: str, limit: LimitModel, recipe: Recipe, collector: ProblemCollector) -> LimitDef | None:
+def _check_limit(
+    name: str, limit: LimitModel, recipe: Recipe, collector: ProblemCollector
+) -> LimitDef | None:
     path = ("limits", name)
     step_name, _, value_name = limit.value.partition(".")
     if step_name not in recipe.steps:
         candidates = list(recipe.steps)
-        collector.add(path + ("value",), f"no step named {step_name!r}{suggest(step_name, candidates)}")
+        collector.add(
+            path + ("value",), f"no step named {step_name!r}{suggest(step_name, candidates)}"
+        )
         return None
     kind = REGISTRY[recipe.steps[step_name].kind]
     if value_name not in kind.values:
@@ -266,12 +319,25 @@ def _check_limit(name: str, limit: LimitModel, recipe: Recipe, collector: Proble
         except BoundError as err:
             collector.add(path + where, str(err))
             ok = False
-    if ok and bounds["low"] is not None and bounds["high"] is not None and bounds["low"] > bounds["high"]:
-        collector.add(path, f"the lower bound {bounds['low']:g} is above the upper bound {bounds['high']:g}")
+    if (
+        ok
+        and bounds["low"] is not None
+        and bounds["high"] is not None
+        and bounds["low"] > bounds["high"]
+    ):
+        collector.add(
+            path, f"the lower bound {bounds['low']:g} is above the upper bound {bounds['high']:g}"
+        )
         ok = False
     if not ok:
         return None
     return LimitDef(
-        name=name, step=step_name, value=value_name, unit=unit, over=limit.over,
-        low=bounds["low"], high=bounds["high"], written=written,
+        name=name,
+        step=step_name,
+        value=value_name,
+        unit=unit,
+        over=limit.over,
+        low=bounds["low"],
+        high=bounds["high"],
+        written=written,
     )

@@ -15,16 +15,16 @@ from pydantic import BaseModel, ConfigDict, Field, StringConstraints, model_vali
 from lotproof.steps import Length, StepParams
 
 __all__ = [
-    "FORMAT",
-    "OVER_CHOICES",
     "CALIBRATION_RULES",
+    "FORMAT",
     "NAME_PATTERN",
-    "RecipeModel",
-    "LimitModel",
-    "StepDef",
-    "LimitDef",
-    "Recipe",
+    "OVER_CHOICES",
     "STEP_KEYS",
+    "LimitDef",
+    "LimitModel",
+    "Recipe",
+    "RecipeModel",
+    "StepDef",
 ]
 
 FORMAT = "lotproof/1"
@@ -50,8 +50,8 @@ class _Strict(BaseModel):
 class LimitModel(_Strict):
     """An acceptance limit on one value that a step reports."""
 
-    value: Annotated[str, StringConstraints(pattern=r"^[A-Za-z][A-Za-z0-9_-]*\.[A-Za-z0-9_]+$")] = Field(
-        description="the bounded value, as STEP.NAME (e.g. pore-stats.area_fraction)"
+    value: Annotated[str, StringConstraints(pattern=r"^[A-Za-z][A-Za-z0-9_-]*\.[A-Za-z0-9_]+$")] = (
+        Field(description="the bounded value, as STEP.NAME (e.g. pore-stats.area_fraction)")
     )
     over: Literal[OVER_CHOICES] = Field(  # type: ignore[valid-type]
         "each",
@@ -76,7 +76,9 @@ class LimitModel(_Strict):
 class RecipeModel(_Strict):
     """The top level of a recipe (steps are checked by their own kind's model)."""
 
-    format: Literal["lotproof/1"] = Field(description="recipe format and version; must be lotproof/1")
+    format: Literal["lotproof/1"] = Field(
+        description="recipe format and version; must be lotproof/1"
+    )
     name: Annotated[str, StringConstraints(pattern=SLUG_PATTERN)] = Field(
         description="the method's name (lower-case letters, digits, '-'); with revision it names "
         "the method on certificates"
@@ -189,5 +191,3 @@ class Recipe:
     def label(self) -> str:
         """The method's identity as printed on certificates: ``name r<revision>``."""
         return f"{self.name} r{self.revision}"
-
-

@@ -18,8 +18,6 @@ from lotproof.runner.recipe.yamlpos import LoadedYaml
 __all__ = ["ProblemCollector", "describe", "suggest", "where_text"]
 
 
-
-
 def _quoted(options: str) -> list[str]:
     return re.findall(r"'([^']*)'", options)
 
@@ -93,8 +91,12 @@ class ProblemCollector:
             elif kind.startswith("quantity_"):
                 self.add(path, str(e["msg"]))
             elif kind in ("greater_than_equal", "greater_than", "less_than_equal", "less_than"):
-                sign = {"greater_than_equal": ">=", "greater_than": ">",
-                        "less_than_equal": "<=", "less_than": "<"}[kind]
+                sign = {
+                    "greater_than_equal": ">=",
+                    "greater_than": ">",
+                    "less_than_equal": "<=",
+                    "less_than": "<",
+                }[kind]
                 bound = next(iter(e.get("ctx", {}).values()), "?")
                 self.add(path, f"must be {sign} {bound} (got {got!r})")
             elif kind in ("too_short", "too_long") and isinstance(got, (list, dict)):

@@ -51,7 +51,9 @@ def parse_bound(raw: object, unit: str) -> float:
                     f"write {number} {unit}"
                 )
         elif unit == DIMENSIONLESS:
-            raise BoundError(f"the value is dimensionless; write the bound without a unit (got {raw!r})")
+            raise BoundError(
+                f"the value is dimensionless; write the bound without a unit (got {raw!r})"
+            )
         else:
             factor = unit_factor(given, unit)
             if factor is None:

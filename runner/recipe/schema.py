@@ -17,7 +17,7 @@ from pydantic.fields import FieldInfo
 from lotproof.runner.recipe.model import NAME_PATTERN, RecipeModel
 from lotproof.steps import REGISTRY, Area, Length, StepKind
 
-__all__ = ["SCHEMA_FILE", "recipe_json_schema", "schema_text", "describe_type", "param_rows"]
+__all__ = ["SCHEMA_FILE", "describe_type", "param_rows", "recipe_json_schema", "schema_text"]
 
 #: where the repository keeps the generated schema, relative to the project root
 SCHEMA_FILE = "recipes/lotproof-recipe.schema.json"

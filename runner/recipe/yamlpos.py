@@ -23,7 +23,7 @@ from typing import Any
 import yaml
 from yaml.nodes import MappingNode, Node, ScalarNode, SequenceNode
 
-__all__ = ["Position", "LoadedYaml", "YamlProblem", "load_yaml", "MAX_RECIPE_BYTES"]
+__all__ = ["MAX_RECIPE_BYTES", "LoadedYaml", "Position", "YamlProblem", "load_yaml"]
 
 #: a recipe larger than this is refused before it is parsed
 MAX_RECIPE_BYTES = 1_000_000
@@ -189,7 +189,9 @@ def _build(
             return _scalar(node)
         except _TagRefused as refused:
             out.problems.append(
-                YamlProblem(lines.mark(node.start_mark), f"explicit tag {refused.tag!r} is not allowed")
+                YamlProblem(
+                    lines.mark(node.start_mark), f"explicit tag {refused.tag!r} is not allowed"
+                )
             )
             return None
     if node.tag not in (_TAG_MAP, _TAG_SEQ):
@@ -208,7 +210,9 @@ def _build(
     for key_node, value_node in node.value:
         kpos = lines.mark(key_node.start_mark)
         if not isinstance(key_node, ScalarNode):
-            out.problems.append(YamlProblem(kpos, "a key must be plain text, not a list or mapping"))
+            out.problems.append(
+                YamlProblem(kpos, "a key must be plain text, not a list or mapping")
+            )
             continue
         key_tag = getattr(key_node, "explicit_tag", None)
         if key_tag is not None:

@@ -24,7 +24,7 @@ from lotproof.runner.errors import InputError
 from lotproof.runner.record.layout import IMAGES_FILE, VERDICTS_FILE
 from lotproof.runner.record.reading import RunFolder
 
-__all__ = ["ValueDelta", "VerdictChange", "LimitComparison", "RunComparison", "compare_runs"]
+__all__ = ["LimitComparison", "RunComparison", "ValueDelta", "VerdictChange", "compare_runs"]
 
 _COLUMN = re.compile(r"^(?P<name>.+) \[(?P<unit>[^\]]*)\]$")
 _LIMIT = "limit "
@@ -50,7 +50,11 @@ class ValueDelta:
 
     @property
     def absolute(self) -> float | None:
-        if self.a is None or self.b is None or not (math.isfinite(self.a) and math.isfinite(self.b)):
+        if (
+            self.a is None
+            or self.b is None
+            or not (math.isfinite(self.a) and math.isfinite(self.b))
+        ):
             return None
         return self.b - self.a
 
@@ -63,9 +67,14 @@ class ValueDelta:
 
     def as_dict(self) -> dict[str, Any]:
         return {
-            "image": self.image, "column": self.column, "unit": self.unit,
-            "a": _finite(self.a), "b": _finite(self.b), "equal": self.equal,
-            "absolute": self.absolute, "relative": self.relative,
+            "image": self.image,
+            "column": self.column,
+            "unit": self.unit,
+            "a": _finite(self.a),
+            "b": _finite(self.b),
+            "equal": self.equal,
+            "absolute": self.absolute,
+            "relative": self.relative,
         }
 
 
@@ -108,18 +117,25 @@ class LimitComparison:
     @property
     def changed(self) -> bool:
         return (
-            self.value_a != self.value_b or self.verdict_a != self.verdict_b
-            or self.bound_a != self.bound_b or self.value_of_a != self.value_of_b
+            self.value_a != self.value_b
+            or self.verdict_a != self.verdict_b
+            or self.bound_a != self.bound_b
+            or self.value_of_a != self.value_of_b
             or self.over_a != self.over_b
         )
 
     def as_dict(self) -> dict[str, Any]:
         return {
-            "name": self.name, "value_of": [self.value_of_a, self.value_of_b],
-            "over": [self.over_a, self.over_b], "unit": self.unit,
-            "a": self.value_a, "b": self.value_b, "delta": self.delta,
+            "name": self.name,
+            "value_of": [self.value_of_a, self.value_of_b],
+            "over": [self.over_a, self.over_b],
+            "unit": self.unit,
+            "a": self.value_a,
+            "b": self.value_b,
+            "delta": self.delta,
             "bound": [self.bound_a, self.bound_b],
-            "verdict": [self.verdict_a, self.verdict_b], "changed": self.changed,
+            "verdict": [self.verdict_a, self.verdict_b],
+            "changed": self.changed,
         }
 
 
@@ -154,9 +170,15 @@ class RunComparison:
     @property
     def identical(self) -> bool:
         return not (
-            self.images_only_a or self.images_only_b or self.columns_only_a or self.columns_only_b
-            or self.changed_values or self.verdict_changes or self.limits_only_a
-            or self.limits_only_b or any(lim.changed for lim in self.limits)
+            self.images_only_a
+            or self.images_only_b
+            or self.columns_only_a
+            or self.columns_only_b
+            or self.changed_values
+            or self.verdict_changes
+            or self.limits_only_a
+            or self.limits_only_b
+            or any(lim.changed for lim in self.limits)
             or self.lot_verdict_a != self.lot_verdict_b
         )
 
@@ -222,7 +244,9 @@ def _read_run(run: Path) -> _Run:
     images: dict[str, dict[str, str]] = {}
     for number, row in enumerate(rows[1:], 2):
         if len(row) != len(header):
-            raise InputError(f"{images_csv} line {number}: {len(row)} cells, the header has {len(header)}")
+            raise InputError(
+                f"{images_csv} line {number}: {len(row)} cells, the header has {len(header)}"
+            )
         images[row[0]] = dict(zip(header, row, strict=True))
     if not isinstance(verdicts, dict) or not isinstance(verdicts.get("limits", {}), dict):
         raise InputError(f"{verdicts_json}: not a verdicts document")
@@ -244,7 +268,8 @@ def compare_runs(a: Path, b: Path) -> RunComparison:
     """
     ra, rb = _read_run(a), _read_run(b)
     out = RunComparison(
-        run_a=ra.path, run_b=rb.path,
+        run_a=ra.path,
+        run_b=rb.path,
         method_a=dict(ra.verdicts.get("method") or {}),
         method_b=dict(rb.verdicts.get("method") or {}),
         lot_verdict_a=str(ra.verdicts.get("lot_verdict", "")),
@@ -266,11 +291,15 @@ def compare_runs(a: Path, b: Path) -> RunComparison:
                 out.verdict_changes.append(VerdictChange(image, what, va, vb))
         for column in shared_columns:
             name = _COLUMN.match(column).group("name")  # type: ignore[union-attr]
-            out.values.append(ValueDelta(
-                image, name, ra.columns[column],
-                _number(row_a[column], f"{ra.path / 'images.csv'}: {image}, {column}"),
-                _number(row_b[column], f"{rb.path / 'images.csv'}: {image}, {column}"),
-            ))
+            out.values.append(
+                ValueDelta(
+                    image,
+                    name,
+                    ra.columns[column],
+                    _number(row_a[column], f"{ra.path / 'images.csv'}: {image}, {column}"),
+                    _number(row_b[column], f"{rb.path / 'images.csv'}: {image}, {column}"),
+                )
+            )
     limits_a, limits_b = ra.verdicts.get("limits", {}), rb.verdicts.get("limits", {})
     out.limits_only_a = [n for n in limits_a if n not in limits_b]
     out.limits_only_b = [n for n in limits_b if n not in limits_a]
@@ -278,13 +307,20 @@ def compare_runs(a: Path, b: Path) -> RunComparison:
         if name not in limits_b:
             continue
         lb = limits_b[name]
-        out.limits.append(LimitComparison(
-            name=name,
-            value_of_a=str(la.get("value_of", "")), value_of_b=str(lb.get("value_of", "")),
-            over_a=str(la.get("over", "")), over_b=str(lb.get("over", "")),
-            unit=str(lb.get("unit", "")),
-            value_a=_limit_value(la), value_b=_limit_value(lb),
-            bound_a=str(la.get("bound", "")), bound_b=str(lb.get("bound", "")),
-            verdict_a=str(la.get("verdict", "")), verdict_b=str(lb.get("verdict", "")),
-        ))
+        out.limits.append(
+            LimitComparison(
+                name=name,
+                value_of_a=str(la.get("value_of", "")),
+                value_of_b=str(lb.get("value_of", "")),
+                over_a=str(la.get("over", "")),
+                over_b=str(lb.get("over", "")),
+                unit=str(lb.get("unit", "")),
+                value_a=_limit_value(la),
+                value_b=_limit_value(lb),
+                bound_a=str(la.get("bound", "")),
+                bound_b=str(lb.get("bound", "")),
+                verdict_a=str(la.get("verdict", "")),
+                verdict_b=str(lb.get("verdict", "")),
+            )
+        )
     return out

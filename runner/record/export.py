@@ -37,13 +37,13 @@ from lotproof.runner.record.reading import RunFolder
 from lotproof.runner.record.signing import load_private_key
 
 __all__ = [
-    "STATEMENT_TYPE",
-    "PREDICATE_TYPE",
     "PAYLOAD_TYPE",
+    "PREDICATE_TYPE",
     "PROV_NAMESPACE",
+    "STATEMENT_TYPE",
+    "dsse_envelope",
     "in_toto_statement",
     "pae",
-    "dsse_envelope",
     "prov_document",
 ]
 
@@ -159,8 +159,10 @@ def dsse_envelope(statement: dict[str, Any], private_key: Path) -> dict[str, Any
         "payload": base64.b64encode(body).decode("ascii"),
         "payloadType": PAYLOAD_TYPE,
         "signatures": [
-            {"keyid": hashlib.sha256(raw_public).hexdigest(),
-             "sig": base64.b64encode(signature).decode("ascii")}
+            {
+                "keyid": hashlib.sha256(raw_public).hexdigest(),
+                "sig": base64.b64encode(signature).decode("ascii"),
+            }
         ],
     }
 
@@ -249,7 +251,9 @@ def prov_document(run_dir: Path) -> dict[str, Any]:
         "lp:platform": typed(start.get("platform")),
     }
     run = _id("run", _seal(run_dir))
-    run_attrs: dict[str, Any] = {"prov:label": f"run of {recipe.get('name')} r{recipe.get('revision')}"}
+    run_attrs: dict[str, Any] = {
+        "prov:label": f"run of {recipe.get('name')} r{recipe.get('revision')}"
+    }
     if start.get("time_utc"):
         run_attrs["prov:startTime"] = start["time_utc"]
     if end.get("time_utc"):

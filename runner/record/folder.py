@@ -11,7 +11,7 @@ import csv
 import io
 import json
 import math
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any, BinaryIO
 
@@ -41,10 +41,10 @@ __all__ = [
     "CAUTION",
     "ROUNDING_RULE",
     "create_run_folder",
-    "write_bytes",
-    "write_run_files",
     "format_number",
     "value_columns",
+    "write_bytes",
+    "write_run_files",
 ]
 
 CAUTION = (
@@ -61,9 +61,10 @@ ROUNDING_RULE = (
     "length of a line become 2*floor(v/2) + 1 pixels (the nearest odd number, ties upward)."
 )
 
+
 def create_run_folder(out: Path, recipe: Recipe, now: datetime | None = None) -> Path:
     """Make a new, empty run folder under ``out``; never reuse an existing one."""
-    now = now or datetime.now(timezone.utc)
+    now = now or datetime.now(UTC)
     base = run_folder_name(recipe.name, recipe.revision, now)
     try:
         out.mkdir(parents=True, exist_ok=True)
@@ -76,7 +77,9 @@ def create_run_folder(out: Path, recipe: Recipe, now: datetime | None = None) ->
         except FileExistsError:
             continue
         except OSError as err:
-            raise RunFolderError(f"{candidate}: cannot create the run folder ({err.strerror})") from None
+            raise RunFolderError(
+                f"{candidate}: cannot create the run folder ({err.strerror})"
+            ) from None
         return candidate
     raise RunFolderError(f"{out}: too many run folders named {base}-*")
 
@@ -181,7 +184,9 @@ def _table_columns(results: list[ImageResult], per_object: bool) -> list[tuple[s
     return columns
 
 
-def _write_tables_csv(path: Path, recipe: Recipe, results: list[ImageResult], *, per_object: bool) -> None:
+def _write_tables_csv(
+    path: Path, recipe: Recipe, results: list[ImageResult], *, per_object: bool
+) -> None:
     """Rows of every table-giving step: ``objects.csv`` (per-object tables) or ``tables.csv``.
 
     Written image by image to a temporary file, then renamed: memory stays at one
@@ -219,8 +224,17 @@ def _steps_csv(results: list[ImageResult]) -> bytes:
     rows = [["image", "step", "kind", "version", "key", "checksum", "cache"]]
     for r in results:
         for record in r.steps:
-            rows.append([r.id, record.step, record.kind, record.version, record.key,
-                         record.checksum or "", record.cache])
+            rows.append(
+                [
+                    r.id,
+                    record.step,
+                    record.kind,
+                    record.version,
+                    record.key,
+                    record.checksum or "",
+                    record.cache,
+                ]
+            )
     return _csv(rows)
 
 
@@ -316,14 +330,18 @@ def write_previews(run: Path, result: ImageResult) -> list[str]:
     return written
 
 
-def verdicts_document(recipe: Recipe, results: list[ImageResult], verdicts: Verdicts) -> dict[str, Any]:
+def verdicts_document(
+    recipe: Recipe, results: list[ImageResult], verdicts: Verdicts
+) -> dict[str, Any]:
     return {
         "lot_verdict": verdicts.lot,
-        "method": {"name": recipe.name, "revision": recipe.revision, "recipe_sha256": recipe.sha256},
-        "images": verdicts.images,
-        "incomplete_images": {
-            r.id: r.reason for r in results if r.status != "ok"
+        "method": {
+            "name": recipe.name,
+            "revision": recipe.revision,
+            "recipe_sha256": recipe.sha256,
         },
+        "images": verdicts.images,
+        "incomplete_images": {r.id: r.reason for r in results if r.status != "ok"},
         "image_verdicts": {r.id: verdicts.image_verdict(r.id) for r in results},
         "limits": {name: lv.as_dict() for name, lv in verdicts.limits.items()},
         "rules": "bounds are inclusive; an image that could not be analysed never counts as passing",
@@ -350,5 +368,14 @@ def write_run_files(
     kept = _write_kept(run, results)
     write_bytes(run / VERDICTS_FILE, _json(verdicts_document(recipe, results, verdicts)))
     tables = [TABLES_FILE] if extra else []
-    return [RECIPE_FILE, RESOLVED_FILE, IMAGES_FILE, OBJECTS_FILE, *tables, STEPS_FILE, INPUTS_FILE,
-            *kept, VERDICTS_FILE]
+    return [
+        RECIPE_FILE,
+        RESOLVED_FILE,
+        IMAGES_FILE,
+        OBJECTS_FILE,
+        *tables,
+        STEPS_FILE,
+        INPUTS_FILE,
+        *kept,
+        VERDICTS_FILE,
+    ]

@@ -61,7 +61,15 @@ __all__ = [
 GENESIS = hashlib.sha256(b"lotproof ledger v1").hexdigest()
 #: event types, in the order a run writes them
 EVENT_TYPES = (
-    "run-start", "recipe", "input", "step", "image", "verdict", "lot-verdict", "output", "run-end",
+    "run-start",
+    "recipe",
+    "input",
+    "step",
+    "image",
+    "verdict",
+    "lot-verdict",
+    "output",
+    "run-end",
 )
 #: fields the writer sets on every event
 _RESERVED = ("seq", "type", "prev")
@@ -154,7 +162,9 @@ class LedgerWriter:
                 f"{self.path}: exists already; a ledger is never rewritten"
             ) from None
         except OSError as err:
-            raise LedgerWriteError(f"{self.path}: cannot create the ledger ({err.strerror})") from None
+            raise LedgerWriteError(
+                f"{self.path}: cannot create the ledger ({err.strerror})"
+            ) from None
         fsync_folder(self.path.parent)
 
     @property
@@ -167,7 +177,7 @@ class LedgerWriter:
         """Number of events written."""
         return self._seq
 
-    def append(self, type: str, /, **fields: Any) -> str:  # noqa: A002 - the event's field name
+    def append(self, type: str, /, **fields: Any) -> str:
         """Write one event; return the sha256 hex of its line (the seal so far)."""
         return self.append_group([(type, fields)])
 
@@ -258,7 +268,9 @@ def write_sha256sums(run_dir: Path, files: list[str]) -> Path:
     try:
         write_file(target, "".join(lines).encode("utf-8"), replace=False)
     except FileExistsError:
-        raise LedgerWriteError(f"{target}: exists already; run files are never overwritten") from None
+        raise LedgerWriteError(
+            f"{target}: exists already; run files are never overwritten"
+        ) from None
     except OSError as err:
         raise LedgerWriteError(f"{target}: cannot write ({err.strerror})") from None
     return target

@@ -22,7 +22,15 @@ from typing import Any
 from lotproof.runner.evaluate.image import ImageResult
 from lotproof.runner.recipe.model import LimitDef, Recipe
 
-__all__ = ["PASS", "FAIL", "INCOMPLETE", "LimitVerdict", "Verdicts", "bound_text", "evaluate_limits"]
+__all__ = [
+    "FAIL",
+    "INCOMPLETE",
+    "PASS",
+    "LimitVerdict",
+    "Verdicts",
+    "bound_text",
+    "evaluate_limits",
+]
 
 PASS = "pass"
 FAIL = "fail"
@@ -122,8 +130,13 @@ def evaluate_limits(recipe: Recipe, results: list[ImageResult]) -> Verdicts:
     out: dict[str, LimitVerdict] = {}
     for name, limit in recipe.limits.items():
         lv = LimitVerdict(
-            name=name, value_name=f"{limit.step}.{limit.value}", unit=limit.unit,
-            over=limit.over, low=limit.low, high=limit.high, written=limit.written,
+            name=name,
+            value_name=f"{limit.step}.{limit.value}",
+            unit=limit.unit,
+            over=limit.over,
+            low=limit.low,
+            high=limit.high,
+            written=limit.written,
             verdict=PASS,
         )
         values = []
@@ -155,10 +168,17 @@ def evaluate_limits(recipe: Recipe, results: list[ImageResult]) -> Verdicts:
                 lv.verdict = INCOMPLETE
                 lv.reason = "the lot value leaves out images that gave no value"
                 # More images can only raise a maximum or lower a minimum.
-                monotone = (limit.over == "lot-max" and limit.high is not None
-                            and lv.value is not None and lv.value > limit.high) or (
-                            limit.over == "lot-min" and limit.low is not None
-                            and lv.value is not None and lv.value < limit.low)
+                monotone = (
+                    limit.over == "lot-max"
+                    and limit.high is not None
+                    and lv.value is not None
+                    and lv.value > limit.high
+                ) or (
+                    limit.over == "lot-min"
+                    and limit.low is not None
+                    and lv.value is not None
+                    and lv.value < limit.low
+                )
                 if monotone:
                     lv.verdict = FAIL
                     lv.reason = "fails even on the images that gave a value"

@@ -173,7 +173,9 @@ class RunFolder:
         try:
             data = read_file(path)
         except FileNotFoundError:
-            raise LedgerError(f"{path}: no ledger; not a run folder, or the run never started") from None
+            raise LedgerError(
+                f"{path}: no ledger; not a run folder, or the run never started"
+            ) from None
         except OSError as err:
             raise LedgerError(f"{path}: cannot read ({err.strerror})") from None
         problems: list[str] = []

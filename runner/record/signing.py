@@ -107,7 +107,9 @@ def keygen(private_path: Path, public_path: Path) -> None:
             raise SigningError(f"{path}: exists already; keys are never overwritten")
     run = inside_run_folder(private_path)
     if run is not None:
-        raise SigningError(f"{private_path}: inside the run folder {run}; keep private keys elsewhere")
+        raise SigningError(
+            f"{private_path}: inside the run folder {run}; keep private keys elsewhere"
+        )
     key = Ed25519PrivateKey.generate()
     private_pem = key.private_bytes(Encoding.PEM, PrivateFormat.PKCS8, NoEncryption())
     public_pem = key.public_key().public_bytes(Encoding.PEM, PublicFormat.SubjectPublicKeyInfo)

@@ -107,7 +107,9 @@ def _check_sums(run_dir: Path, recorded: dict[str, str], problems: list[str]) ->
         digest, name = match.groups()
         listed.add(name)
         if name not in recorded:
-            problems.append(f"{SUMS_FILE} line {number}: {name} is in no output event of the ledger")
+            problems.append(
+                f"{SUMS_FILE} line {number}: {name} is in no output event of the ledger"
+            )
         elif recorded[name] != digest:
             problems.append(f"{SUMS_FILE} line {number}: {name} differs from the ledger's sha256")
     return listed
@@ -149,7 +151,9 @@ def verify_run(
     seal = lines[-1].hash if lines else None
     events = [(line.number, line.event) for line in lines if line.event is not None]
 
-    finished = bool(events) and events[-1][1].get("type") == "run-end" and events[-1][0] == len(lines)
+    finished = (
+        bool(events) and events[-1][1].get("type") == "run-end" and events[-1][0] == len(lines)
+    )
     for number, event in events[:-1]:
         if event.get("type") == "run-end":
             problems.append(f"{LEDGER_FILE} line {number}: events follow the run-end event")
@@ -166,7 +170,9 @@ def verify_run(
             continue
         name, digest = event.get("path"), event.get("sha256")
         if not isinstance(name, str) or safe_relative(name) is None:
-            problems.append(f"{where}: output path {name!r} is not a plain path inside the run folder")
+            problems.append(
+                f"{where}: output path {name!r} is not a plain path inside the run folder"
+            )
             continue
         if not isinstance(digest, str) or not _HEX64.match(digest):
             problems.append(f"{where}: output {name} has no sha256")

@@ -32,9 +32,18 @@ def find_chromium() -> str | None:
 def chromium_command(browser: str, profile: Path, *extra: str) -> list[str]:
     """The headless Chromium command line: no sandbox, no GPU, nothing reached on the network."""
     return [
-        browser, "--headless", "--no-sandbox", "--disable-gpu", "--no-pdf-header-footer",
-        "--disable-background-networking", "--disable-component-update", "--disable-sync",
-        "--no-first-run", "--disable-extensions", f"--user-data-dir={profile}", *extra,
+        browser,
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--no-pdf-header-footer",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        "--no-first-run",
+        "--disable-extensions",
+        f"--user-data-dir={profile}",
+        *extra,
     ]
 
 
@@ -53,11 +62,17 @@ def html_to_pdf(html_file: Path, pdf: Path, browser: str | None = None) -> None:
         raise FileNotFoundError("chromium")
     pdf = pdf.resolve()
     with tempfile.TemporaryDirectory(prefix="lotproof-chromium-") as profile:
-        command = chromium_command(browser, Path(profile), f"--print-to-pdf={pdf}",
-                                   html_file.resolve().as_uri())
+        command = chromium_command(
+            browser, Path(profile), f"--print-to-pdf={pdf}", html_file.resolve().as_uri()
+        )
         try:
-            done = subprocess.run(command, capture_output=True, timeout=PDF_TIMEOUT_S, check=False,
-                                  stdin=subprocess.DEVNULL)
+            done = subprocess.run(
+                command,
+                capture_output=True,
+                timeout=PDF_TIMEOUT_S,
+                check=False,
+                stdin=subprocess.DEVNULL,
+            )
         except subprocess.TimeoutExpired:
             raise RuntimeError(f"chromium did not finish within {PDF_TIMEOUT_S} s") from None
     if done.returncode != 0 or not pdf.is_file() or pdf.stat().st_size == 0:

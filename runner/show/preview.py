@@ -45,10 +45,10 @@ from lotproof.runner.recipe.model import Recipe
 from lotproof.steps import REGISTRY, Area, Length, Table
 
 __all__ = [
-    "PreviewError",
-    "PreviewSheet",
     "SIDECAR_FORMAT",
     "TILE_SIDE",
+    "PreviewError",
+    "PreviewSheet",
     "make_preview",
     "write_preview",
 ]
@@ -136,7 +136,11 @@ def _chosen_steps(recipe: Recipe, steps: list[str] | None) -> list[str]:
 
 def _quantity_text(value: Any, resolved: Any) -> str:
     text = str(value)
-    if isinstance(resolved, (Length, Area)) and resolved is not value and resolved.unit != value.unit:
+    if (
+        isinstance(resolved, (Length, Area))
+        and resolved is not value
+        and resolved.unit != value.unit
+    ):
         text += f" = {_short(resolved.value)} {resolved.unit}"
     return text
 
@@ -154,7 +158,9 @@ def _short(value: Any) -> str:
     return format(value, ".5g")
 
 
-def _param_lines(recipe: Recipe, name: str, spacing: tuple[float, ...] | None) -> tuple[list[str], dict[str, Any]]:
+def _param_lines(
+    recipe: Recipe, name: str, spacing: tuple[float, ...] | None
+) -> tuple[list[str], dict[str, Any]]:
     """'key: value' texts of the parameters the recipe sets, and the same as JSON."""
     step = recipe.steps[name]
     params = step.params
@@ -205,7 +211,9 @@ def _data_lines(data: Any, kind: str) -> list[str]:
     if data.size == 0:
         return lines
     if kind == "mask":
-        lines.append(f"foreground: {_short(100 * float(np.count_nonzero(data)) / data.size)} % of pixels")
+        lines.append(
+            f"foreground: {_short(100 * float(np.count_nonzero(data)) / data.size)} % of pixels"
+        )
     elif kind == "labels":
         lines.append(f"objects: {int(np.unique(data[data > 0]).size)}")
     else:
@@ -239,7 +247,11 @@ def _picture(
             gray = to_display(data, TILE_SIDE)
         return _fit(np.repeat(gray[..., None], 3, axis=-1))
     # a table or values: outline what was measured over the first input
-    if isinstance(source, np.ndarray) and first_image is not None and source_kind in ("mask", "labels"):
+    if (
+        isinstance(source, np.ndarray)
+        and first_image is not None
+        and source_kind in ("mask", "labels")
+    ):
         return _fit(outline_overlay(first_image, source, TILE_SIDE))
     return None
 
@@ -297,8 +309,12 @@ def _draw(header: list[str], tiles: list[dict[str, Any]]) -> tuple[bytes, tuple[
     draw = ImageDraw.Draw(sheet)
     draw.text((_PAD, 12), header[0], font=fonts["title"], fill=_INK)
     for i, line in enumerate(header[1:3]):
-        draw.text((_PAD, 36 + i * _SMALL_LINE), _clip(line, fonts["small"], width - 2 * _PAD),
-                  font=fonts["small"], fill=_MUTED)
+        draw.text(
+            (_PAD, 36 + i * _SMALL_LINE),
+            _clip(line, fonts["small"], width - 2 * _PAD),
+            font=fonts["small"],
+            fill=_MUTED,
+        )
     for index, tile in enumerate(tiles):
         row, col = divmod(index, COLUMNS)
         x0 = _PAD + col * (_CELL_W + _PAD)
@@ -312,8 +328,12 @@ def _draw(header: list[str], tiles: list[dict[str, Any]]) -> tuple[bytes, tuple[
             sheet.paste(Image.fromarray(picture), (px, py))
             tile["picture"] = [px, py, px + w, py + h]
         else:
-            draw.text((x0 + 12, y0 + TILE_SIDE // 2 - 8), "no picture: " + tile["data"],
-                      font=fonts["text"], fill=_MUTED)
+            draw.text(
+                (x0 + 12, y0 + TILE_SIDE // 2 - 8),
+                "no picture: " + tile["data"],
+                font=fonts["text"],
+                fill=_MUTED,
+            )
             tile["picture"] = None
         draw.rectangle([x0 - 1, y0 - 1, x0 + TILE_SIDE, y0 + TILE_SIDE], outline=_MUTED)
         # beside the picture: what the data is, and the step's values
@@ -321,17 +341,29 @@ def _draw(header: list[str], tiles: list[dict[str, Any]]) -> tuple[bytes, tuple[
         max_side_lines = (_CELL_H - 4) // _SMALL_LINE
         side = tile.pop("_side")
         if len(side) > max_side_lines:
-            side = side[: max_side_lines - 1] + [f"\u2026 and {len(side) - max_side_lines + 1} more"]
+            side = side[: max_side_lines - 1] + [
+                f"\u2026 and {len(side) - max_side_lines + 1} more"
+            ]
         for i, line in enumerate(side):
-            draw.text((side_x, y0 + i * _SMALL_LINE), _clip(line, fonts["small"], _SIDE_W),
-                      font=fonts["small"], fill=_INK)
+            draw.text(
+                (side_x, y0 + i * _SMALL_LINE),
+                _clip(line, fonts["small"], _SIDE_W),
+                font=fonts["small"],
+                fill=_INK,
+            )
         # under the picture: name, kind and parameters
         caption_y = y0 + TILE_SIDE + 6
         title = f"{tile['name']}  \u00b7  {tile['kind']}"
-        draw.text((x0, caption_y), _clip(title, fonts["name"], TILE_SIDE + _SIDE_W),
-                  font=fonts["name"], fill=_INK)
+        draw.text(
+            (x0, caption_y),
+            _clip(title, fonts["name"], TILE_SIDE + _SIDE_W),
+            font=fonts["name"],
+            fill=_INK,
+        )
         params = tile.pop("_params") or ["defaults only"]
-        for i, line in enumerate(_wrap(params, fonts["text"], TILE_SIDE + _SIDE_W, _CAPTION_LINES - 1)):
+        for i, line in enumerate(
+            _wrap(params, fonts["text"], TILE_SIDE + _SIDE_W, _CAPTION_LINES - 1)
+        ):
             draw.text((x0, caption_y + (i + 1) * _LINE), line, font=fonts["text"], fill=_MUTED)
     buffer = io.BytesIO()
     sheet.save(buffer, format="PNG", optimize=False)
@@ -384,17 +416,27 @@ def make_preview(
     if result.status != "ok":
         raise InputError(f"{sample.id}: {result.reason}")
     inputs = {
-        name: read_image(path, lot, lossy=recipe.lossy_input).data for name, path in sample.files.items()
+        name: read_image(path, lot, lossy=recipe.lossy_input).data
+        for name, path in sample.files.items()
     }
     first_image = next(iter(inputs.values()))
     tiles: list[dict[str, Any]] = []
     for name, data in inputs.items():
-        tiles.append({
-            "name": name, "role": "input", "kind": "input", "data": "image",
-            "params": {"glob": recipe.inputs[name]},
-            "_params": [f"file: {Path(sample.files[name]).name}", f"glob: {recipe.inputs[name]}"],
-            "_side": _data_lines(data, "image"), "_picture": _picture(data, "image", None),
-        })
+        tiles.append(
+            {
+                "name": name,
+                "role": "input",
+                "kind": "input",
+                "data": "image",
+                "params": {"glob": recipe.inputs[name]},
+                "_params": [
+                    f"file: {Path(sample.files[name]).name}",
+                    f"glob: {recipe.inputs[name]}",
+                ],
+                "_side": _data_lines(data, "image"),
+                "_picture": _picture(data, "image", None),
+            }
+        )
     for name in chosen:
         step = recipe.steps[name]
         kind = recipe.kinds.get(name, "image")
@@ -404,18 +446,28 @@ def make_preview(
         # in the order the step kind declares them: a cached result keeps no order of its own
         values = {
             v: (result.values[(name, v)], result.units[(name, v)])
-            for v in REGISTRY[step.kind].values if (name, v) in result.values
+            for v in REGISTRY[step.kind].values
+            if (name, v) in result.values
         }
         side = [f"  {v} = {_short(x)}{'' if u == '-' else ' ' + u}" for v, (x, u) in values.items()]
         # the values first: they are what limits read; then what the data is
-        side = (["values:"] + side if side else []) + (_data_lines(data, kind) if data is not None else [kind])
+        side = (["values:"] + side if side else []) + (
+            _data_lines(data, kind) if data is not None else [kind]
+        )
         param_texts, params_json = _param_lines(recipe, name, result.spacing)
         tile = {
-            "name": name, "role": "step", "kind": step.kind, "data": kind, "to": list(step.to),
+            "name": name,
+            "role": "step",
+            "kind": step.kind,
+            "data": kind,
+            "to": list(step.to),
             "params": params_json,
             "values": {v: {"value": _json_number(x), "unit": u} for v, (x, u) in values.items()},
-            "_params": param_texts, "_side": side,
-            "_picture": _picture(data, kind, first_image, source, recipe.kinds.get(source_name, "")),
+            "_params": param_texts,
+            "_side": side,
+            "_picture": _picture(
+                data, kind, first_image, source, recipe.kinds.get(source_name, "")
+            ),
         }
         if isinstance(data, Table):
             tile["rows"] = data.n_rows
@@ -424,8 +476,11 @@ def make_preview(
     header = [
         f"{recipe.name} r{recipe.revision}  \u00b7  {sample.id}",
         f"pixel size {' x '.join(_short(s) for s in spacing)} um  \u00b7  recipe sha256 {recipe.sha256}",
-        ("not run (nothing needs them): " + ", ".join(recipe.unused)) if recipe.unused else
-        "every step the recipe runs is shown" if not steps else f"steps shown: {', '.join(chosen)}",
+        ("not run (nothing needs them): " + ", ".join(recipe.unused))
+        if recipe.unused
+        else "every step the recipe runs is shown"
+        if not steps
+        else f"steps shown: {', '.join(chosen)}",
     ]
     png, size = _draw(header, tiles)
     counts = {"computed": 0, "reused": 0}

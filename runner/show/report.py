@@ -227,21 +227,33 @@ def _size_figure(step: str, values: list[float], column: str) -> bytes:
     # matplotlib's own defaults, whatever the user's matplotlibrc says; the salt makes ids fixed
     with matplotlib.rc_context():
         matplotlib.rcParams.update(matplotlib.rcParamsDefault)
-        matplotlib.rcParams.update({
-            "svg.hashsalt": "lotproof-report",
-            "svg.fonttype": "path",
-            "font.size": 8.5,
-            "axes.linewidth": 0.8,
-        })
+        matplotlib.rcParams.update(
+            {
+                "svg.hashsalt": "lotproof-report",
+                "svg.fonttype": "path",
+                "font.size": 8.5,
+                "axes.linewidth": 0.8,
+            }
+        )
         fig = Figure(figsize=(7.2, 2.6))
         FigureCanvasSVG(fig)
         left, right = fig.subplots(1, 2)
-        left.bar(edges[:-1], counts, width=np.diff(edges), align="edge",
-                 color="#c8c8c8", edgecolor="#202020", linewidth=0.6)
+        left.bar(
+            edges[:-1],
+            counts,
+            width=np.diff(edges),
+            align="edge",
+            color="#c8c8c8",
+            edgecolor="#202020",
+            linewidth=0.6,
+        )
         left.set_xlabel(f"{name} [{unit}]")
         left.set_ylabel("objects per bin")
-        left.set_title(f"{step}: {len(data)} objects, bin width {_num(edges[1] - edges[0])} {unit}",
-                       fontsize=8.5, loc="left")
+        left.set_title(
+            f"{step}: {len(data)} objects, bin width {_num(edges[1] - edges[0])} {unit}",
+            fontsize=8.5,
+            loc="left",
+        )
         fraction = np.arange(1, len(data) + 1) / len(data)
         right.step(data, fraction, where="post", color="#000000", linewidth=1.2)
         for level in (0.1, 0.5, 0.9):
@@ -356,7 +368,10 @@ def _header(files: RunFiles, seal_html: str) -> str:
     tool = start.get("tool", {}).get("version") or "not recorded"
     rows = [
         ("Method", f"{_e(name)}, revision {_e(revision)}"),
-        ("Recipe sha256", _code(method.get("recipe_sha256") or recipe_event.get("sha256", "not recorded"))),
+        (
+            "Recipe sha256",
+            _code(method.get("recipe_sha256") or recipe_event.get("sha256", "not recorded")),
+        ),
         ("Lot", f"{_e(lot_name)}" + (f' <span class="note">({_e(lot)})</span>' if lot else "")),
         ("Date (UTC)", _e(date) + (f' <span class="note">(ended {_e(end)})</span>' if end else "")),
         ("lotproof", _e(tool)),
@@ -384,11 +399,15 @@ def _lot_verdict(files: RunFiles) -> str:
     failed = [n for n, lv in limits.items() if lv.get("verdict") == "fail"]
     incomplete = verdicts.get("incomplete_images", {})
     n_images = verdicts.get("images", len(verdicts.get("image_verdicts", {})))
-    parts = [f"{n_images} image{'s' if n_images != 1 else ''}, {len(limits)} limit{'s' if len(limits) != 1 else ''}"]
+    parts = [
+        f"{n_images} image{'s' if n_images != 1 else ''}, {len(limits)} limit{'s' if len(limits) != 1 else ''}"
+    ]
     if failed:
         parts.append(f"failed: {', '.join(failed)}")
     if incomplete:
-        parts.append(f"{len(incomplete)} image{'s' if len(incomplete) != 1 else ''} could not be analysed")
+        parts.append(
+            f"{len(incomplete)} image{'s' if len(incomplete) != 1 else ''} could not be analysed"
+        )
     word = VERDICT_MARKS.get(lot, lot)
     return (
         f'<section class="verdict verdict-{_e(lot)}" id="lot-verdict" data-verdict="{_e(lot)}">'
@@ -406,11 +425,15 @@ def _limits_table(files: RunFiles) -> str:
         over = lv.get("over", "each")
         images = lv.get("images", {})
         if over == "each":
-            judged = [v for v in images.values() if v.get("verdict") in ("pass", "fail", "incomplete")]
+            judged = [
+                v for v in images.values() if v.get("verdict") in ("pass", "fail", "incomplete")
+            ]
             numbers = [v["value"] for v in judged if v.get("value") is not None]
             failed = sum(1 for v in judged if v.get("verdict") == "fail")
-            value = (f"{_num(min(numbers))} to {_num(max(numbers))}" if numbers else "\u2013")
-            value_note = f'<br><span class="note">range over {len(judged)} images; {failed} failed</span>'
+            value = f"{_num(min(numbers))} to {_num(max(numbers))}" if numbers else "\u2013"
+            value_note = (
+                f'<br><span class="note">range over {len(judged)} images; {failed} failed</span>'
+            )
             value_cell = f'<td class="num" data-value="">{value}{value_note}</td>'
         else:
             value_cell = f'<td class="num" data-value="{_e(_json_text(lv.get("value")))}">{_num(lv.get("value"))}</td>'
@@ -479,7 +502,11 @@ def _images_table(files: RunFiles) -> str:
                     f'<figure><img src="{_data_uri("image/png", figs[name])}" alt="{_e(image_id)}: {alt}">'
                     f"<figcaption>{_e(alt)}</figcaption></figure>"
                 )
-        pics_html = f'<div class="pics">{"".join(pics)}</div>' if pics else '<span class="note">no preview</span>'
+        pics_html = (
+            f'<div class="pics">{"".join(pics)}</div>'
+            if pics
+            else '<span class="note">no preview</span>'
+        )
         row = rows_by_id.get(image_id, {})
         items = []
         for header, value_of, unit in columns:
@@ -535,9 +562,10 @@ def _method_section(files: RunFiles) -> str:
     rows = []
     for name, step in steps.items():
         params = step.get("params", {})
-        text = ", ".join(
-            f"{k}: {_param_text(v)}" for k, v in params.items() if v is not None
-        ) or "\u2013"
+        text = (
+            ", ".join(f"{k}: {_param_text(v)}" for k, v in params.items() if v is not None)
+            or "\u2013"
+        )
         runs = "yes" if step.get("runs", True) else "no (not needed)"
         rows.append(
             f"<tr><td>{_e(name)}</td><td>{_e(step.get('apply', ''))} v{_e(step.get('version', ''))}</td>"
@@ -571,8 +599,11 @@ def _provenance(files: RunFiles) -> str:
     parts = ["<h2>Provenance</h2>"]
     git = recipe.get("git")
     if git:
-        state = ("modified since that commit (not as committed)" if git.get("modified")
-                 else "as committed (clean)")
+        state = (
+            "modified since that commit (not as committed)"
+            if git.get("modified")
+            else "as committed (clean)"
+        )
         git_html = f"commit {_code(git.get('commit', '?'))} at {_code(git.get('path_in_repo', '?'))}; {_e(state)}"
     elif recipe:
         git_html = "not in a git work tree"
@@ -584,12 +615,28 @@ def _provenance(files: RunFiles) -> str:
         ("Recipe", (_code(recipe["path"]) if recipe.get("path") else "not recorded")),
         ("Recipe in git", git_html),
         ("lotproof", _e(start.get("tool", {}).get("version", "not recorded"))),
-        ("Python", _e(" ".join(str(python.get(k, "")) for k in ("implementation", "version")).strip()
-                      or "not recorded")),
-        ("Platform", _e(" ".join(str(platform.get(k, "")) for k in ("system", "release", "machine")).strip()
-                        or "not recorded")),
+        (
+            "Python",
+            _e(
+                " ".join(str(python.get(k, "")) for k in ("implementation", "version")).strip()
+                or "not recorded"
+            ),
+        ),
+        (
+            "Platform",
+            _e(
+                " ".join(str(platform.get(k, "")) for k in ("system", "release", "machine")).strip()
+                or "not recorded"
+            ),
+        ),
         ("CPU", _e(start.get("cpu", {}).get("model") or "not recorded")),
-        ("Run by", _e(" on ".join(str(x) for x in (start.get("user"), start.get("host")) if x) or "not recorded")),
+        (
+            "Run by",
+            _e(
+                " on ".join(str(x) for x in (start.get("user"), start.get("host")) if x)
+                or "not recorded"
+            ),
+        ),
         ("Executor", _e(start.get("executor") or "not recorded")),
     ]
     parts.append(_dl(rows))
@@ -669,19 +716,22 @@ def build_report(
         seal_html += ")</span>"
     method = files.verdicts.get("method", {})
     title = f"{method.get('name', 'run')} r{method.get('revision', '?')} report"
-    body = "".join([
-        _header(files, seal_html),
-        _lot_verdict(files),
-        _limits_table(files),
-        _images_table(files),
-        _sizes_section(files),
-        _method_section(files),
-        _provenance(files),
-        _cautions(files),
-        f"<footer>Report made by lotproof {_e(__version__)} from the files of run "
-        f"{_e(files.run_dir.name)}" + (" (rebuilt from the finished record)" if seal is not None else "")
-        + ".</footer>",
-    ])
+    body = "".join(
+        [
+            _header(files, seal_html),
+            _lot_verdict(files),
+            _limits_table(files),
+            _images_table(files),
+            _sizes_section(files),
+            _method_section(files),
+            _provenance(files),
+            _cautions(files),
+            f"<footer>Report made by lotproof {_e(__version__)} from the files of run "
+            f"{_e(files.run_dir.name)}"
+            + (" (rebuilt from the finished record)" if seal is not None else "")
+            + ".</footer>",
+        ]
+    )
     document = (
         "<!DOCTYPE html>\n"
         '<html lang="en"><head><meta charset="utf-8">'
@@ -737,8 +787,13 @@ def rebuild_report(run_dir: Path, out: Path | None = None) -> tuple[Path, str]:
     out = Path(out) if out is not None else default_report_path(run_dir)
     check_outside(run_dir, out)
     check = verify_run(run_dir)
-    data = build_report(run_dir, None, seal=check.seal or "none (no ledger)",
-                        record_status=check.status, problems=check.problems)
+    data = build_report(
+        run_dir,
+        None,
+        seal=check.seal or "none (no ledger)",
+        record_status=check.status,
+        problems=check.problems,
+    )
     _replace(out, data)
     return out, check.status
 

@@ -15,7 +15,9 @@ from lotproof.steps.measure import LabelParams, MeasureParams, label, measure
 from lotproof.steps.units import Length, resolve_for_spacing
 
 
-def _ball(radius_um: float, spacing: tuple[float, float, float], hollow_um: float = 0.0) -> np.ndarray:
+def _ball(
+    radius_um: float, spacing: tuple[float, float, float], hollow_um: float = 0.0
+) -> np.ndarray:
     """A ball of ``radius_um`` sampled on voxels of ``spacing``, centred on a voxel centre."""
     halves = [math.ceil(radius_um / s) + 3 for s in spacing]
     z, y, x = np.ogrid[tuple(slice(-h, h + 1) for h in halves)]
@@ -54,7 +56,7 @@ def test_sphere_volume_and_surface(radius: float, spacing: tuple[float, float, f
     ratio = table["surface_area"][0] / (4 * math.pi * radius**2)
     assert 1.0 < ratio < 1.12
     # source: closed form, the centroid of a ball is its centre
-    centre = [(n - 1) / 2 * s for n, s in zip(_ball(radius, spacing).shape, spacing)]
+    centre = [(n - 1) / 2 * s for n, s in zip(_ball(radius, spacing).shape, spacing, strict=False)]
     assert table["centroid_z"][0] == pytest.approx(centre[0])
     assert table["centroid_x"][0] == pytest.approx(centre[2])
 
@@ -82,7 +84,9 @@ def test_euler_characteristic_of_ball_hollow_ball_and_torus(connectivity: int) -
 
 
 @pytest.mark.parametrize(("connectivity", "skimage_connectivity"), [(6, 1), (26, 3)])
-def test_euler_characteristic_matches_scikit_image(connectivity: int, skimage_connectivity: int) -> None:
+def test_euler_characteristic_matches_scikit_image(
+    connectivity: int, skimage_connectivity: int
+) -> None:
     rng = np.random.default_rng(7)
     for density in (0.1, 0.3, 0.5, 0.7):
         mask = rng.random((9, 10, 11)) < density
@@ -137,7 +141,9 @@ def test_anisotropic_ball_and_disk_are_the_closed_form_ellipsoid(radius_um, spac
     halves = [(n - 1) // 2 for n in got.shape]
     grid = np.ogrid[tuple(slice(-h - 2, h + 3) for h in halves)]
     # source: closed form, {sum_k (p_k s_k / R)^2 <= 1}: every voxel centre within R um
-    inside = sum((g * s) ** 2 for g, s in zip(grid, spacing)) <= radius_um**2 * (1 + 1e-12)
+    inside = sum((g * s) ** 2 for g, s in zip(grid, spacing, strict=False)) <= radius_um**2 * (
+        1 + 1e-12
+    )
     expected = inside[tuple(slice(2, -2) for _ in spacing)]
     np.testing.assert_array_equal(got, expected)
     # nothing of the closed-form shape lies outside the footprint's box

@@ -81,7 +81,11 @@ def unsplit_run(tmp_path_factory: pytest.TempPathFactory):  # type: ignore[no-un
     text = RECIPE.read_text()
     start = text.index("  separated:\n")
     end = text.index("  sizes:\n")
-    text = text[:start] + "  separated:\n    apply: label\n    to: whole\n    connectivity: 8\n" + text[end:]
+    text = (
+        text[:start]
+        + "  separated:\n    apply: label\n    to: whole\n    connectivity: 8\n"
+        + text[end:]
+    )
     start, end = text.index("  sieve:\n"), text.index("limits:\n")
     text = text[:start] + text[end:]
     path = folder / "unsplit.yaml"
@@ -169,9 +173,15 @@ def test_d50_and_the_tails_match_the_ground_truth(powder_run) -> None:  # type: 
         truth = _truth(result.id)["inside_ecd_um"]
         # source: ground truth: number-weighted percentiles (numpy, linear) of the ECDs of the
         # drawn particles' own pixels; tolerances stated above
-        assert result.values[("sizes", "ecd_d50")] == pytest.approx(truth["d50"], abs=D50_TOLERANCE_UM)
-        assert result.values[("sizes", "ecd_d10")] == pytest.approx(truth["d10"], abs=TAIL_TOLERANCE_UM)
-        assert result.values[("sizes", "ecd_d90")] == pytest.approx(truth["d90"], abs=TAIL_TOLERANCE_UM)
+        assert result.values[("sizes", "ecd_d50")] == pytest.approx(
+            truth["d50"], abs=D50_TOLERANCE_UM
+        )
+        assert result.values[("sizes", "ecd_d10")] == pytest.approx(
+            truth["d10"], abs=TAIL_TOLERANCE_UM
+        )
+        assert result.values[("sizes", "ecd_d90")] == pytest.approx(
+            truth["d90"], abs=TAIL_TOLERANCE_UM
+        )
 
 
 def test_only_the_fines_rich_sample_fails(powder_run) -> None:  # type: ignore[no-untyped-def]

@@ -46,20 +46,30 @@ def _sha(data: bytes) -> str:
 @pytest.mark.skipif(SHA256SUM is None, reason="needs coreutils sha256sum")
 def test_sha256sum_checks_our_sums_file(tmp_path: Path) -> None:
     (tmp_path / "kept" / "disc 01").mkdir(parents=True)
-    files = {"images.csv": b"image,status\n", "kept/disc 01/clean.tif": bytes(range(256)),
-             "verdicts.json": b"{}\n", "empty.csv": b""}
+    files = {
+        "images.csv": b"image,status\n",
+        "kept/disc 01/clean.tif": bytes(range(256)),
+        "verdicts.json": b"{}\n",
+        "empty.csv": b"",
+    }
     for name, data in files.items():
         (tmp_path / name).write_bytes(data)
     write_sha256sums(tmp_path, list(files))
     # source: GNU coreutils sha256sum -c (the real tool, run here)
-    done = subprocess.run([SHA256SUM, "--strict", "-c", SUMS_FILE], cwd=tmp_path,
-                          capture_output=True, text=True, check=False)
+    done = subprocess.run(
+        [SHA256SUM, "--strict", "-c", SUMS_FILE],
+        cwd=tmp_path,
+        capture_output=True,
+        text=True,
+        check=False,
+    )
     assert done.returncode == 0, done.stderr
     assert sorted(done.stdout.splitlines()) == sorted(f"{name}: OK" for name in files)
     # and it fails, like verify, once a file changes
     (tmp_path / "verdicts.json").write_bytes(b"{ }\n")
-    done = subprocess.run([SHA256SUM, "-c", SUMS_FILE], cwd=tmp_path,
-                          capture_output=True, text=True, check=False)
+    done = subprocess.run(
+        [SHA256SUM, "-c", SUMS_FILE], cwd=tmp_path, capture_output=True, text=True, check=False
+    )
     assert done.returncode == 1
     assert "verdicts.json: FAILED" in done.stdout
 
@@ -70,8 +80,9 @@ def test_our_sums_lines_are_what_sha256sum_prints(tmp_path: Path) -> None:
     (tmp_path / "a.tif").write_bytes(b"II*\x00")
     write_sha256sums(tmp_path, ["b.csv", "a.tif"])
     # source: GNU coreutils sha256sum output format, "<hex>  <name>" (text mode)
-    printed = subprocess.run([SHA256SUM, "a.tif", "b.csv"], cwd=tmp_path,
-                             capture_output=True, text=True, check=True).stdout
+    printed = subprocess.run(
+        [SHA256SUM, "a.tif", "b.csv"], cwd=tmp_path, capture_output=True, text=True, check=True
+    ).stdout
     assert (tmp_path / SUMS_FILE).read_text() == printed
 
 
@@ -132,8 +143,15 @@ def test_rfc8785_property_sorting_example() -> None:
         "\u0080": "Control",
         "\u00f6": "Latin Small Letter O With Diaeresis",
     }
-    order = ["Carriage Return", "One", "Control", "Latin Small Letter O With Diaeresis",
-             "Euro Sign", "Emoji: Grinning Face", "Hebrew Letter Dalet With Dagesh"]
+    order = [
+        "Carriage Return",
+        "One",
+        "Control",
+        "Latin Small Letter O With Diaeresis",
+        "Euro Sign",
+        "Emoji: Grinning Face",
+        "Hebrew Letter Dalet With Dagesh",
+    ]
     text = canonical(value).decode("utf-8")
     positions = [text.index(f'"{label}"') for label in order]
     assert positions == sorted(positions)
@@ -159,16 +177,16 @@ def test_rfc8785_section_3_2_2_example() -> None:
 # source: RFC 8032 section 7.1, TEST 1 (empty message)
 RFC8032_SECRET = "9d61b19deffd5a60ba844af492ec2cc44449c5697b326919703bac031cae7f60"
 RFC8032_PUBLIC = "d75a980182b10ab7d54bfed3c964073a0ee172f3daa62325af021a68f707511a"
-RFC8032_SIGNATURE = (
-    "e5564300c360ac729086e2cc806e828a84877f1eb8e5d974d873e065224901555fb8821590a33bacc61e39701cf9b46bd25bf5f0595bbe24655141438e7a100b"
-)
+RFC8032_SIGNATURE = "e5564300c360ac729086e2cc806e828a84877f1eb8e5d974d873e065224901555fb8821590a33bacc61e39701cf9b46bd25bf5f0595bbe24655141438e7a100b"
 
 
 def _rfc_keys(folder: Path) -> tuple[Path, Path]:
     key = Ed25519PrivateKey.from_private_bytes(bytes.fromhex(RFC8032_SECRET))
     private, public = folder / "rfc.key", folder / "rfc.pub"
     private.write_bytes(key.private_bytes(Encoding.PEM, PrivateFormat.PKCS8, NoEncryption()))
-    public.write_bytes(key.public_key().public_bytes(Encoding.PEM, PublicFormat.SubjectPublicKeyInfo))
+    public.write_bytes(
+        key.public_key().public_bytes(Encoding.PEM, PublicFormat.SubjectPublicKeyInfo)
+    )
     return private, public
 
 
@@ -237,19 +255,50 @@ def _prov_run(tmp_path: Path) -> Path:
     (run / "recipe.yaml").write_bytes(recipe)
     (run / "kept" / "d1" / "spots.tif").write_bytes(b"II*\x00")
     with LedgerWriter(run / LEDGER_FILE) as ledger:
-        ledger.append("run-start", tool={"name": "lotproof", "version": "0.1.0"}, python="3.11",
-                      libraries={}, platform="p", cpu="c", command=["lotproof"], user="qa",
-                      host="h", time_utc="2026-12-01T21:45:00Z")
-        ledger.append("recipe", path="recipes/p.yaml", sha256=_sha(recipe), name="prov-test",
-                      revision=1, git=None)
+        ledger.append(
+            "run-start",
+            tool={"name": "lotproof", "version": "0.1.0"},
+            python="3.11",
+            libraries={},
+            platform="p",
+            cpu="c",
+            command=["lotproof"],
+            user="qa",
+            host="h",
+            time_utc="2026-12-01T21:45:00Z",
+        )
+        ledger.append(
+            "recipe",
+            path="recipes/p.yaml",
+            sha256=_sha(recipe),
+            name="prov-test",
+            revision=1,
+            git=None,
+        )
         for image in ("d1.tif", "sub/d2.tif"):
-            ledger.append("input", image=image, input="section", path=image, size=4,
-                          sha256=_sha(image.encode()), shape=[4, 4], dtype="uint8", calibration={})
+            ledger.append(
+                "input",
+                image=image,
+                input="section",
+                path=image,
+                size=4,
+                sha256=_sha(image.encode()),
+                shape=[4, 4],
+                dtype="uint8",
+                calibration={},
+            )
             for step, kind in (("spots", "threshold"), ("stats", "measure")):
-                ledger.append("step", image=image, step=step, kind=kind, version="1",
-                              key=_sha(f"k{image}{step}".encode()),
-                              checksum=_sha(f"c{image}{step}".encode()),
-                              cache="computed", seconds=0.0)
+                ledger.append(
+                    "step",
+                    image=image,
+                    step=step,
+                    kind=kind,
+                    version="1",
+                    key=_sha(f"k{image}{step}".encode()),
+                    checksum=_sha(f"c{image}{step}".encode()),
+                    cache="computed",
+                    seconds=0.0,
+                )
         for name in ("recipe.yaml", "kept/d1/spots.tif"):
             data = (run / name).read_bytes()
             ledger.append("output", path=name, sha256=_sha(data), size=len(data))

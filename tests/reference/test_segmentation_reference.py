@@ -31,7 +31,13 @@ def lens_area(r: float, d: float) -> float:
 
 @pytest.mark.parametrize(
     "r, d, angle",
-    [(20.0, 25.0, 0.0), (15.0, 27.0, 0.0), (24.0, 33.0, 90.0), (18.0, 29.0, 30.0), (30.0, 45.0, 63.0)],
+    [
+        (20.0, 25.0, 0.0),
+        (15.0, 27.0, 0.0),
+        (24.0, 33.0, 90.0),
+        (18.0, 29.0, 30.0),
+        (30.0, 45.0, 63.0),
+    ],
 )
 def test_two_overlapping_equal_disks_split_into_halves_of_the_union(r, d, angle) -> None:
     # source: closed form; by symmetry the cut of two equal overlapping disks is the

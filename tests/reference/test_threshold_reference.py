@@ -112,10 +112,10 @@ def test_otsu_uint16_is_the_exact_maximum():
     values, counts = np.unique(image, return_counts=True)
     values = [int(v) for v in values]
     counts = [int(c) for c in counts]
-    n, total = sum(counts), sum(v * c for v, c in zip(values, counts))
+    n, total = sum(counts), sum(v * c for v, c in zip(values, counts, strict=False))
     best, best_level = Fraction(-1), None
     w1 = s1 = 0
-    for value, count in zip(values[:-1], counts[:-1]):
+    for value, count in zip(values[:-1], counts[:-1], strict=False):
         w1 += count
         s1 += value * count
         variance = Fraction((s1 * n - total * w1) ** 2, w1 * (n - w1))
