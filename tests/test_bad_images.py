@@ -32,6 +32,8 @@ from lotproof.runner.errors import EXIT_BAD_INPUT, InputError
 from lotproof.runner.evaluate.inputs import MAX_PIXELS, MIN_SIDE, read_image
 from lotproof.runner.jobs.run import RunSummary
 
+from _builders import recipe_text, write_lot, write_recipe
+
 IMAGES = Path(__file__).parent / "bad_inputs" / "images"
 GENERATOR = IMAGES / "make_bad_images.py"
 
@@ -47,56 +49,23 @@ def _generator() -> ModuleType:
 MAKE = _generator()
 EXPECTED: dict[str, str] = MAKE.EXPECTED
 
-RECIPE = """\
-format: lotproof/1
-name: bad-image-check
-revision: 1
-pixel_size: 0.5 um
-inputs:
-  section: "*"
-steps:
-{gray}  spots:
-    apply: threshold
-    to: {source}
-    method: fixed
-    level: 100
-  stats:
-    apply: measure
-    to: spots
-    connectivity: 8
-limits:
-  fraction:
-    value: stats.area_fraction
-    max: 0.5
-  mean-fraction:
-    value: stats.area_fraction
-    over: lot-mean
-    max: 1
-"""
-GRAY = "  luma:\n    apply: gray\n    to: section\n"
-
 GOOD = ("good-a.tif", "good-b.tif")
 #: the bright square of a good image: 8 x 8 of 32 x 32 pixels
 GOOD_FRACTION = 64 / 1024  # source: closed form, pixel count of the square over the frame
 
 
 def _recipe(folder: Path, *, gray: bool = False, lossy: bool = False) -> Path:
-    text = RECIPE.format(gray=GRAY if gray else "", source="luma" if gray else "section")
+    """Every file of the lot (``*``), a fixed threshold, the lot mean checked."""
+    text = recipe_text("bad-image-check", pattern="*", gray=gray, lot_mean=True)
     if lossy:
         text = text.replace("pixel_size: 0.5 um\n", "pixel_size: 0.5 um\nlossy_input: allow\n")
-    path = folder / (
-        "recipe-gray.yaml" if gray else "recipe-lossy.yaml" if lossy else "recipe.yaml"
-    )
-    path.write_text(text)
-    return path
+    name = "recipe-gray.yaml" if gray else "recipe-lossy.yaml" if lossy else "recipe.yaml"
+    return write_recipe(folder, text, name)
 
 
 def _good_lot(folder: Path) -> Path:
-    lot = folder / "lot"
-    lot.mkdir()
-    for name in GOOD:
-        tifffile.imwrite(lot / name, MAKE._field())
-    return lot
+    # kept here: the good images are the bad-image generator's own field (MAKE._field)
+    return write_lot(folder, {name: MAKE._field() for name in GOOD})
 
 
 def _tree_digest(folder: Path) -> dict[str, str]:

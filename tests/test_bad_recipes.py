@@ -32,6 +32,8 @@ from lotproof.runner.cli.main import main
 from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INVALID, EXIT_OK, RecipeError
 from lotproof.runner.recipe.load import load_recipe
 
+from _builders import write_lot
+
 FOLDER = Path(__file__).parent / "bad_inputs" / "recipes"
 SIDECAR = FOLDER / "EXPECTED.json"
 _HEADER = re.compile(rb"^# expect: (\d+)(?::(\d+))?: (.+)\n")
@@ -91,10 +93,8 @@ def test_the_folder_holds_at_least_40_bad_recipes_each_with_one_expectation() ->
 
 
 def _lot(tmp_path: Path) -> Path:
-    lot = tmp_path / "lot"
-    lot.mkdir()
-    tifffile.imwrite(lot / "a.tif", np.arange(64 * 64, dtype=np.uint16).reshape(64, 64))
-    return lot
+    # any readable image will do: the recipe is refused before the lot is read
+    return write_lot(tmp_path, {"a.tif": np.arange(64 * 64, dtype=np.uint16).reshape(64, 64)})
 
 
 def _tree_digest(folder: Path) -> str:

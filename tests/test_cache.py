@@ -30,60 +30,15 @@ from lotproof.runner.evaluate.hashing import (
 from lotproof.runner.recipe.load import parse_recipe
 from lotproof.steps import REGISTRY, Output, Table, resolve_to_px
 
-RECIPE = """\
-format: lotproof/1
-name: cache-test
-revision: 1
-pixel_size: 0.5 um
-inputs:
-  section: "*.tif"
-steps:
-  level:
-    apply: subtract-background
-    to: section
-    features: bright
-    radius: 4 um
-  spots:
-    apply: threshold
-    to: level
-    method: otsu
-  clean:
-    apply: open
-    to: spots
-    radius: 0.5 um
-  stats:
-    apply: measure
-    to: clean
-    connectivity: 8
-limits:
-  fraction:
-    value: stats.area_fraction
-    max: 0.5
-"""
+from _builders import noisy_discs, recipe_text, seeded_lot, write_recipe
+
+#: background, Otsu threshold, opening, measure: four steps per image
+RECIPE = recipe_text("cache-test", background="4 um", method="otsu", clean=True)
 
 
 def _image(seed: int) -> np.ndarray:
-    rng = np.random.default_rng(seed)
-    image = rng.normal(1000, 20, (96, 96))
-    yy, xx = np.mgrid[:96, :96]
-    for _ in range(6):
-        cy, cx, r = rng.integers(10, 86, 2).tolist() + [int(rng.integers(2, 5))]
-        image[(yy - cy) ** 2 + (xx - cx) ** 2 <= r * r] += 800
-    return image.clip(0, 65535).astype(np.uint16)
-
-
-def _lot(tmp_path: Path, n: int = 4, name: str = "lot") -> Path:
-    lot = tmp_path / name
-    lot.mkdir()
-    for i in range(n):
-        tifffile.imwrite(lot / f"img-{i:02d}.tif", _image(i))
-    return lot
-
-
-def _recipe(tmp_path: Path, text: str = RECIPE, name: str = "recipe.yaml") -> Path:
-    path = tmp_path / name
-    path.write_text(text)
-    return path
+    """96x96 uint16 noise with six bright discs at seeded places."""
+    return noisy_discs(seed, side=96, count=6, centres=(10, 86), radii=(2, 5), add=800)
 
 
 # ---------------------------------------------------------------- keys
@@ -324,24 +279,24 @@ def _rows(run: Path, name: str) -> list[str]:
 
 
 def test_partial_recompute_after_a_parameter_edit(tmp_path: Path) -> None:
-    lot = _lot(tmp_path)
+    lot = seeded_lot(tmp_path, 4, _image)
     store = DiskStore(tmp_path / "cache")
-    cold = run_lot(_recipe(tmp_path), lot, tmp_path / "runs", store=store)
+    cold = run_lot(write_recipe(tmp_path, RECIPE), lot, tmp_path / "runs", store=store)
     assert cold.step_counts() == {"computed": 16, "reused": 0}
-    warm = run_lot(_recipe(tmp_path), lot, tmp_path / "runs", store=store)
+    warm = run_lot(write_recipe(tmp_path, RECIPE), lot, tmp_path / "runs", store=store)
     assert warm.step_counts() == {"computed": 0, "reused": 16}
     assert _rows(warm.run_dir, "images.csv") == _rows(cold.run_dir, "images.csv")
     assert _rows(warm.run_dir, "objects.csv") == _rows(cold.run_dir, "objects.csv")
     # the unchanged intermediates are not even loaded
     assert {s.cache for r in warm.results for s in r.steps if s.step == "level"} == {"skipped"}
 
-    edited = _recipe(tmp_path, RECIPE.replace("radius: 0.5 um", "radius: 1 um"), "edited.yaml")
+    edited = write_recipe(tmp_path, RECIPE.replace("radius: 0.5 um", "radius: 1 um"), "edited.yaml")
     partial = run_lot(edited, lot, tmp_path / "runs", store=store)
     computed = {(r.id, s.step) for r in partial.results for s in r.steps if s.cache == "computed"}
     assert computed == {(f"img-{i:02d}.tif", step) for i in range(4) for step in ("clean", "stats")}
 
     tifffile.imwrite(lot / "img-09.tif", _image(9))
-    added = run_lot(_recipe(tmp_path), lot, tmp_path / "runs", store=store)
+    added = run_lot(write_recipe(tmp_path, RECIPE), lot, tmp_path / "runs", store=store)
     computed = {(r.id, s.step) for r in added.results for s in r.steps if s.cache == "computed"}
     assert {image for image, _ in computed} == {"img-09.tif"}
 
@@ -351,15 +306,17 @@ def test_partial_recompute_after_a_parameter_edit(tmp_path: Path) -> None:
 
 
 def test_corrupt_entry_in_a_run_is_recomputed_and_reported(tmp_path: Path) -> None:
-    lot = _lot(tmp_path, n=1)
+    lot = seeded_lot(tmp_path, 1, _image)
     store = DiskStore(tmp_path / "cache")
-    cold = run_lot(_recipe(tmp_path), lot, tmp_path / "runs", store=store)
+    cold = run_lot(write_recipe(tmp_path, RECIPE), lot, tmp_path / "runs", store=store)
     key = next(s.key for s in cold.results[0].steps if s.step == "stats")
     path = store.path(key)
     raw = bytearray(path.read_bytes())
     raw[-1] ^= 0xFF
     path.write_bytes(bytes(raw))
-    again = run_lot(_recipe(tmp_path), lot, tmp_path / "runs", store=DiskStore(tmp_path / "cache"))
+    again = run_lot(
+        write_recipe(tmp_path, RECIPE), lot, tmp_path / "runs", store=DiskStore(tmp_path / "cache")
+    )
     (result,) = again.results
     assert any("hash mismatch" in note for note in result.notes)
     assert {s.step: s.cache for s in result.steps}["stats"] == "computed"
@@ -381,9 +338,9 @@ def _run_files(run: Path) -> dict[str, bytes]:
 
 
 def test_jobs_1_and_2_give_identical_files(tmp_path: Path) -> None:
-    lot = _lot(tmp_path, n=5)
+    lot = seeded_lot(tmp_path, 5, _image)
     (lot / "img-03.tif").write_bytes(b"II*\x00broken")
-    recipe = load_recipe(_recipe(tmp_path))
+    recipe = load_recipe(write_recipe(tmp_path, RECIPE))
     one = run_lot(recipe, lot, tmp_path / "runs1", store=DiskStore(tmp_path / "c1"), jobs=1)
     two = run_lot(recipe, lot, tmp_path / "runs2", store=DiskStore(tmp_path / "c2"), jobs=2)
     assert [r.id for r in one.results] == [r.id for r in two.results]
@@ -394,8 +351,8 @@ def test_jobs_1_and_2_give_identical_files(tmp_path: Path) -> None:
 def test_cli_cache_options_and_command(
     tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    lot = _lot(tmp_path, n=2)
-    recipe = _recipe(tmp_path)
+    lot = seeded_lot(tmp_path, 2, _image)
+    recipe = write_recipe(tmp_path, RECIPE)
     cache = tmp_path / "cache"
     args = ["run", str(recipe), str(lot), "--out", str(tmp_path / "runs"), "--json", "-j", "1"]
     for expected in ({"computed": 8, "reused": 0}, {"computed": 0, "reused": 8}):

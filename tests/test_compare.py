@@ -7,7 +7,6 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-import tifffile
 
 import lotproof.runner.cli.record  # noqa: F401 - registers the record commands
 from lotproof import run_lot
@@ -15,51 +14,18 @@ from lotproof.runner.cli.main import main
 from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_OK, InputError
 from lotproof.runner.record.compare import ValueDelta, compare_runs
 
-RECIPE = """\
-format: lotproof/1
-name: spot-test
-revision: {revision}
-pixel_size: 0.5 um
-inputs:
-  section: "*.tif"
-steps:
-  spots:
-    apply: threshold
-    to: section
-    method: fixed
-    level: 100
-  stats:
-    apply: measure
-    to: spots
-    connectivity: 8
-limits:
-  fraction:
-    value: stats.area_fraction
-    max: {max_fraction}
-  mean-fraction:
-    value: stats.area_fraction
-    over: lot-mean
-    max: 1
-"""
-
-
-def _image(n_spots: int) -> np.ndarray:
-    """32x32 with ``n_spots`` bright 4x4 squares: area fraction n * 16 / 1024."""
-    image = np.full((32, 32), 20, np.uint8)
-    for i in range(n_spots):
-        image[4 + 8 * i : 8 + 8 * i, 4:8] = 200
-    return image
+from _builders import recipe_text, spot_column, write_lot, write_recipe
 
 
 def _run(
     tmp_path: Path, name: str, spots: dict[str, int], revision: int = 1, max_fraction: float = 0.05
 ) -> Path:
-    lot = tmp_path / f"lot-{name}"
-    lot.mkdir()
-    for image, n in spots.items():
-        tifffile.imwrite(lot / image, _image(n))
-    recipe = tmp_path / f"recipe-{name}.yaml"
-    recipe.write_text(RECIPE.format(revision=revision, max_fraction=max_fraction))
+    """A run of images with ``spots`` squares each (:func:`_builders.spot_column`)."""
+    lot = write_lot(
+        tmp_path, {image: spot_column(n) for image, n in spots.items()}, name=f"lot-{name}"
+    )
+    text = recipe_text("spot-test", revision=revision, max_fraction=max_fraction, lot_mean=True)
+    recipe = write_recipe(tmp_path, text, f"recipe-{name}.yaml")
     return run_lot(recipe, lot, tmp_path / f"runs-{name}").run_dir
 
 

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import json
-import subprocess
 from pathlib import Path
 
 import pytest
@@ -12,6 +11,8 @@ import lotproof.runner.cli.record  # noqa: F401 - registers the record commands
 from lotproof.runner.cli.main import main
 from lotproof.runner.errors import EXIT_INVALID, EXIT_OK, RecipeError
 from lotproof.runner.recipe.diff import diff_recipes
+
+from _builders import git, write_recipe
 
 BASE = """\
 format: lotproof/1
@@ -83,15 +84,9 @@ steps:
 """
 
 
-def _write(folder: Path, name: str, text: str) -> Path:
-    path = folder / name
-    path.write_text(text)
-    return path
-
-
 def test_reordering_comments_and_spelling_are_identical(tmp_path: Path) -> None:
     diff = diff_recipes(
-        str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", SAME))
+        str(write_recipe(tmp_path, BASE, "a.yaml")), str(write_recipe(tmp_path, SAME, "b.yaml"))
     )
     assert diff.identical, diff.as_dict()
     assert diff.bytes_differ
@@ -101,7 +96,7 @@ def test_reordering_comments_and_spelling_are_identical(tmp_path: Path) -> None:
 def test_changed_radius_is_caught_with_pixels(tmp_path: Path) -> None:
     changed = BASE.replace("radius: 1.5 um", "radius: 2 um")
     diff = diff_recipes(
-        str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed))
+        str(write_recipe(tmp_path, BASE, "a.yaml")), str(write_recipe(tmp_path, changed, "b.yaml"))
     )
     assert not diff.identical
     assert [c.as_dict() for c in diff.steps_changed] == [
@@ -116,7 +111,7 @@ def test_changed_radius_is_caught_with_pixels(tmp_path: Path) -> None:
 def test_bumped_revision_gives_no_warning(tmp_path: Path) -> None:
     changed = BASE.replace("radius: 1.5 um", "radius: 2 um").replace("revision: 4", "revision: 5")
     diff = diff_recipes(
-        str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed))
+        str(write_recipe(tmp_path, BASE, "a.yaml")), str(write_recipe(tmp_path, changed, "b.yaml"))
     )
     assert [c.where for c in diff.top] == ["revision"]
     assert diff.warnings == []
@@ -125,7 +120,7 @@ def test_bumped_revision_gives_no_warning(tmp_path: Path) -> None:
 def test_pixels_written_for_micrometres_is_a_change_with_a_note(tmp_path: Path) -> None:
     changed = BASE.replace("radius: 1.5 um", "radius: 3 px")
     diff = diff_recipes(
-        str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed))
+        str(write_recipe(tmp_path, BASE, "a.yaml")), str(write_recipe(tmp_path, changed, "b.yaml"))
     )
     (change,) = diff.steps_changed
     assert (change.a, change.b) == ("1.5 um (3 px)", "3 px")
@@ -137,7 +132,7 @@ def test_pixel_size_change_shows_on_every_physical_length(tmp_path: Path) -> Non
         "revision: 4", "revision: 5"
     )
     diff = diff_recipes(
-        str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed))
+        str(write_recipe(tmp_path, BASE, "a.yaml")), str(write_recipe(tmp_path, changed, "b.yaml"))
     )
     assert [c.as_dict() for c in diff.top] == [
         {"where": "revision", "a": 4, "b": 5, "note": ""},
@@ -160,7 +155,7 @@ def test_steps_and_limits_added_removed_changed(tmp_path: Path) -> None:
         .replace("  stats:\n", "  holes:\n    apply: fill-holes\n    to: clean\n  stats:\n")
     )
     diff = diff_recipes(
-        str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed))
+        str(write_recipe(tmp_path, BASE, "a.yaml")), str(write_recipe(tmp_path, changed, "b.yaml"))
     )
     assert diff.steps_added == ["holes"] and diff.steps_removed == []
     assert {c.where: (c.a, c.b) for c in diff.steps_changed} == {
@@ -176,7 +171,7 @@ def test_steps_and_limits_added_removed_changed(tmp_path: Path) -> None:
 def test_another_step_kind_is_one_change(tmp_path: Path) -> None:
     changed = BASE.replace("apply: open", "apply: close")
     diff = diff_recipes(
-        str(_write(tmp_path, "a.yaml", BASE)), str(_write(tmp_path, "b.yaml", changed))
+        str(write_recipe(tmp_path, BASE, "a.yaml")), str(write_recipe(tmp_path, changed, "b.yaml"))
     )
     assert [(c.where, c.a, c.b) for c in diff.steps_changed] == [
         ("steps.clean.apply", "open", "close")
@@ -186,8 +181,8 @@ def test_another_step_kind_is_one_change(tmp_path: Path) -> None:
 def test_invalid_recipe_is_a_recipe_error(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    bad = _write(tmp_path, "b.yaml", BASE.replace("radius: 1.5 um", "radius: 3"))
-    good = _write(tmp_path, "a.yaml", BASE)
+    bad = write_recipe(tmp_path, BASE.replace("radius: 1.5 um", "radius: 3"), "b.yaml")
+    good = write_recipe(tmp_path, BASE, "a.yaml")
     with pytest.raises(RecipeError) as info:
         diff_recipes(str(good), str(bad))
     assert "steps.clean.radius" in str(info.value)
@@ -197,41 +192,20 @@ def test_invalid_recipe_is_a_recipe_error(
     assert "b.yaml:" in capsys.readouterr().err
 
 
-def _git(repo: Path, *args: str) -> str:
-    done = subprocess.run(
-        [
-            "git",
-            "-C",
-            str(repo),
-            "-c",
-            "user.name=t",
-            "-c",
-            "user.email=t@t",
-            "-c",
-            "commit.gpgsign=false",
-            *args,
-        ],
-        capture_output=True,
-        check=True,
-        text=True,
-    )
-    return done.stdout.strip()
-
-
 @pytest.fixture()
 def repo(tmp_path: Path) -> Path:
     repo = tmp_path / "methods"
     (repo / "recipes").mkdir(parents=True)
-    _git(repo, "init", "-q")
-    _write(repo / "recipes", "disc.yaml", BASE)
-    _git(repo, "add", ".")
-    _git(repo, "commit", "-q", "-m", "r4")
-    _write(
+    git(repo, "init", "-q")
+    write_recipe(repo / "recipes", BASE, "disc.yaml")
+    git(repo, "add", ".")
+    git(repo, "commit", "-q", "-m", "r4")
+    write_recipe(
         repo / "recipes",
-        "disc.yaml",
         BASE.replace("radius: 1.5 um", "radius: 2 um").replace("revision: 4", "revision: 5"),
+        "disc.yaml",
     )
-    _git(repo, "commit", "-q", "-am", "r5")
+    git(repo, "commit", "-q", "-am", "r5")
     return repo
 
 
@@ -258,7 +232,7 @@ def test_bad_git_revision_or_no_repo(repo: Path, tmp_path: Path) -> None:
     recipe = repo / "recipes" / "disc.yaml"
     with pytest.raises(RecipeError, match="git show no-such-rev"):
         diff_recipes(f"{recipe}@no-such-rev", str(recipe))
-    loose = _write(tmp_path, "loose.yaml", BASE)
+    loose = write_recipe(tmp_path, BASE, "loose.yaml")
     with pytest.raises(RecipeError, match="not inside a git work tree"):
         diff_recipes(f"{loose}@HEAD", str(loose))
     with pytest.raises(RecipeError, match="not a git revision"):
@@ -266,12 +240,12 @@ def test_bad_git_revision_or_no_repo(repo: Path, tmp_path: Path) -> None:
 
 
 def test_cli_diff(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    a, b = _write(tmp_path, "a.yaml", BASE), _write(tmp_path, "b.yaml", SAME)
+    a, b = write_recipe(tmp_path, BASE, "a.yaml"), write_recipe(tmp_path, SAME, "b.yaml")
     with pytest.raises(SystemExit) as done:
         main(["diff", str(a), str(b)])
     assert done.value.code == EXIT_OK
     assert "identical (only comments or layout differ)" in capsys.readouterr().out
-    c = _write(tmp_path, "c.yaml", BASE.replace("radius: 1.5 um", "radius: 2 um"))
+    c = write_recipe(tmp_path, BASE.replace("radius: 1.5 um", "radius: 2 um"), "c.yaml")
     with pytest.raises(SystemExit) as done:
         main(["diff", str(a), str(c), "--json"])
     assert done.value.code == EXIT_OK

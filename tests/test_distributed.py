@@ -21,7 +21,6 @@ from typing import Any, Literal
 
 import numpy as np
 import pytest
-import tifffile
 from pydantic import Field
 
 distributed = pytest.importorskip("distributed")
@@ -33,6 +32,8 @@ from lotproof.runner.lot.base import ExecutorError  # noqa: E402
 from lotproof.runner.lot.choose import EXECUTOR_KINDS, make_executor, open_executor  # noqa: E402
 from lotproof.runner.lot.local import LocalExecutor  # noqa: E402
 from lotproof.steps import REGISTRY, StepParams, step  # noqa: E402
+
+from _builders import noisy_discs, seeded_lot, write_recipe  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO_RECIPE = ROOT / "recipes" / "filter-disc-porosity.yaml"
@@ -91,6 +92,8 @@ class ProbePlugin(distributed.WorkerPlugin):
         register_probe()
 
 
+# kept here, not built by _builders.recipe_text: no measure step, a limit on the threshold
+# level, and PROBE_RECIPE below edits this text
 SYNTH_RECIPE = """\
 format: lotproof/1
 name: dask-test
@@ -125,22 +128,14 @@ PROBE_RECIPE = SYNTH_RECIPE.replace(
 
 
 def _image(seed: int, trigger: bool = False) -> np.ndarray:
-    rng = np.random.default_rng(seed)
-    image = rng.normal(1000, 20, (64, 64))
-    yy, xx = np.mgrid[:64, :64]
-    for _ in range(4):
-        cy, cx, r = rng.integers(8, 56, 2).tolist() + [int(rng.integers(2, 4))]
-        image[(yy - cy) ** 2 + (xx - cx) ** 2 <= r * r] += 600
-    image = image.clip(0, 65535).astype(np.uint16)
+    """64x64 uint16 noise with four bright discs; the first pixel marks the probe's image."""
+    image = noisy_discs(seed, side=64, count=4, centres=(8, 56), radii=(2, 4), add=600)
     image[0, 0] = TRIGGER if trigger else 900
     return image
 
 
 def _lot(tmp_path: Path, n: int, *, trigger: int | None = None, broken: int | None = None) -> Path:
-    lot = tmp_path / "lot"
-    lot.mkdir()
-    for i in range(n):
-        tifffile.imwrite(lot / f"img-{i:02d}.tif", _image(i, trigger=i == trigger))
+    lot = seeded_lot(tmp_path, n, lambda i: _image(i, trigger=i == trigger))
     if broken is not None:
         (lot / f"img-{broken:02d}.tif").write_bytes(b"II*\x00broken")
     return lot
@@ -258,8 +253,7 @@ def test_synthetic_lot_with_a_broken_image_cold_then_warm(
     tmp_path: Path, executor: Any, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     lot = _lot(tmp_path, 6, broken=4)
-    (tmp_path / "recipe.yaml").write_text(SYNTH_RECIPE)
-    recipe = load_recipe(tmp_path / "recipe.yaml")
+    recipe = load_recipe(write_recipe(tmp_path, SYNTH_RECIPE))
     # workers do not share our working folder: relative lot and cache paths must still work
     monkeypatch.chdir(tmp_path)
     assert lot == tmp_path / "lot"
@@ -290,10 +284,10 @@ def test_results_come_back_in_the_samples_order_and_on_image_sees_each_once(
     tmp_path: Path, executor: Any
 ) -> None:
     lot = _lot(tmp_path, 5)
-    (tmp_path / "recipe.yaml").write_text(SYNTH_RECIPE)
+    recipe = load_recipe(write_recipe(tmp_path, SYNTH_RECIPE))
     seen: list[str] = []
     summary = run_lot(
-        load_recipe(tmp_path / "recipe.yaml"),
+        recipe,
         lot,
         tmp_path / "runs",
         executor=executor,
@@ -309,8 +303,7 @@ def test_an_existing_scheduler_by_address_and_by_dask_config(tmp_path: Path, exe
     import dask
 
     lot = _lot(tmp_path, 3)
-    (tmp_path / "recipe.yaml").write_text(SYNTH_RECIPE)
-    recipe = load_recipe(tmp_path / "recipe.yaml")
+    recipe = load_recipe(write_recipe(tmp_path, SYNTH_RECIPE))
     address = executor.client.scheduler.address
     local = run_lot(recipe, lot, tmp_path / "local", jobs=1)
     with open_executor("dask", jobs=1, scheduler=address, workers=None) as by_address:
@@ -330,9 +323,8 @@ def test_an_existing_scheduler_by_address_and_by_dask_config(tmp_path: Path, exe
 
 
 def _probe_recipe(tmp_path: Path, marker: Path, mode: str) -> Any:
-    path = tmp_path / f"probe-{mode}.yaml"
-    path.write_text(PROBE_RECIPE.format(marker=json.dumps(str(marker)), mode=mode))
-    return load_recipe(path)
+    text = PROBE_RECIPE.format(marker=json.dumps(str(marker)), mode=mode)
+    return load_recipe(write_recipe(tmp_path, text, f"probe-{mode}.yaml"))
 
 
 def test_a_worker_dying_mid_image_is_retried_once_and_the_lot_completes(

@@ -5,13 +5,11 @@ from __future__ import annotations
 import base64
 import hashlib
 import json
-import shutil
 from pathlib import Path
 from urllib.parse import quote
 
 import pytest
 from cryptography.hazmat.primitives.serialization import load_pem_public_key
-from test_ledger import make_record
 
 import lotproof.runner.cli.record  # noqa: F401 - registers the record commands
 from lotproof.runner.cli.main import main
@@ -28,20 +26,9 @@ from lotproof.runner.record.export import (
 from lotproof.runner.record.layout import LEDGER_FILE
 from lotproof.runner.record.ledger import LedgerError, canonical
 from lotproof.runner.record.reading import RunFolder
-from lotproof.runner.record.signing import keygen
 from lotproof.runner.record.verify import verify_run
 
-
-@pytest.fixture(scope="module")
-def record(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    return make_record(tmp_path_factory.mktemp("record"))
-
-
-@pytest.fixture(scope="module")
-def keys(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
-    folder = tmp_path_factory.mktemp("keys")
-    keygen(folder / "lab.key", folder / "lab.pub")
-    return folder / "lab.key", folder / "lab.pub"
+from _builders import copy_run
 
 
 def test_statement_subjects_are_the_outputs_with_their_digests(record: Path) -> None:
@@ -137,8 +124,7 @@ def test_prov_document_structure(record: Path) -> None:
 
 
 def test_exports_refuse_a_broken_chain(record: Path, tmp_path: Path) -> None:
-    run = tmp_path / "run"
-    shutil.copytree(record, run)
+    run = copy_run(record, tmp_path, "run")
     lines = (run / LEDGER_FILE).read_bytes().splitlines(keepends=True)
     lines[2] = lines[2].replace(b'"seq":3', b'"seq":9')
     (run / LEDGER_FILE).write_bytes(b"".join(lines))
@@ -150,8 +136,7 @@ def test_exports_refuse_a_broken_chain(record: Path, tmp_path: Path) -> None:
 
 
 def test_exports_refuse_an_unfinished_run(record: Path, tmp_path: Path) -> None:
-    run = tmp_path / "run"
-    shutil.copytree(record, run)
+    run = copy_run(record, tmp_path, "run")
     lines = (run / LEDGER_FILE).read_bytes().splitlines(keepends=True)
     (run / LEDGER_FILE).write_bytes(b"".join(lines[:-1]))
     with pytest.raises(LedgerError, match="never finished"):
@@ -161,8 +146,7 @@ def test_exports_refuse_an_unfinished_run(record: Path, tmp_path: Path) -> None:
 def test_prov_reads_only_the_ledger(record: Path, tmp_path: Path) -> None:
     # Step events carry the names each step is applied to, so the PROV document is made from
     # the ledger alone: an edited recipe.yaml cannot change it (and `verify` reports the edit).
-    run = tmp_path / "run"
-    shutil.copytree(record, run)
+    run = copy_run(record, tmp_path, "run")
     before = prov_document(run)
     with open(run / "recipe.yaml", "ab") as handle:
         handle.write(b"# edited\n")

@@ -26,7 +26,6 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-import tifffile
 
 from lotproof.runner.cli.main import main
 from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INTEGRITY, EXIT_LIMIT_FAILED
@@ -35,30 +34,10 @@ from lotproof.runner.jobs.run import run_lot
 from lotproof.runner.record.layout import LEDGER_FILE
 from lotproof.runner.record.verify import verify_run
 
-RECIPE = """\
-format: lotproof/1
-name: fault-test
-revision: 1
-pixel_size: 0.5 um
-inputs:
-  section: "*.tif"
-steps:
-  spots:
-    apply: threshold
-    to: section
-    method: otsu
-  clean:
-    apply: open
-    to: spots
-    radius: 0.5 um
-  stats:
-    apply: measure
-    to: clean
-limits:
-  fraction:
-    value: stats.area_fraction
-    max: 0.05
-"""
+from _builders import noisy_squares, recipe_text, seeded_lot, write_recipe
+
+#: Otsu threshold, opening, measure; the area fraction limit (0.05) fails for this lot
+RECIPE = recipe_text("fault-test", method="otsu", clean=True, connectivity=None, max_fraction=0.05)
 #: three images, three steps each: nine cache entries in a complete run
 IMAGES = 3
 STEPS = 3
@@ -74,24 +53,16 @@ STABLE = (
 
 
 def _image(seed: int) -> np.ndarray:
-    rng = np.random.default_rng(seed)
-    image = rng.integers(0, 60, (72, 72)).astype(np.uint8)
-    for _ in range(6):
-        y, x = rng.integers(4, 62, 2)
-        image[y : y + 7, x : x + 7] = 230
-    return image
+    """72x72 uint8 noise with six bright 7x7 squares at seeded places."""
+    return noisy_squares(seed, side=72, count=6, square=7, bright=230, corners=(4, 62))
 
 
 @pytest.fixture(scope="module")
 def world(tmp_path_factory: pytest.TempPathFactory) -> dict[str, object]:
     """One lot and one recipe for every test, and a reference run made without a cache."""
     root = tmp_path_factory.mktemp("faults")
-    lot = root / "lot"
-    lot.mkdir()
-    for i in range(IMAGES):
-        tifffile.imwrite(lot / f"part-{i}.tif", _image(i))
-    recipe = root / "recipe.yaml"
-    recipe.write_text(RECIPE)
+    lot = seeded_lot(root, IMAGES, _image, names="part-{}.tif")
+    recipe = write_recipe(root, RECIPE)
     reference = run_lot(recipe, lot, root / "reference")
     assert reference.exit_code == EXIT_LIMIT_FAILED  # the lot fails its limit: exit 1 throughout
     files = _stable_files(reference.run_dir)

@@ -5,19 +5,16 @@ from __future__ import annotations
 import base64
 import hashlib
 import json
-import platform
 import stat
 import subprocess
 from pathlib import Path
 
 import numpy as np
 import pytest
-import tifffile
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import lotproof.runner.cli.record  # noqa: F401 - registers verify, keygen, export, diff, compare
-from lotproof import __version__, run_lot
 from lotproof.runner.cli.main import main
 from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INTEGRITY, EXIT_INVALID, EXIT_OK
 from lotproof.runner.recipe.git import git_info
@@ -35,133 +32,11 @@ from lotproof.runner.record.reading import RunFolder
 from lotproof.runner.record.signing import SigningError, keygen, sign_seal, write_signature
 from lotproof.runner.record.verify import verify_run
 
-RECIPE = """\
-format: lotproof/1
-name: spot-test
-revision: 2
-pixel_size: 0.5 um
-inputs:
-  section: "*.tif"
-steps:
-  spots:
-    apply: threshold
-    to: section
-    method: fixed
-    level: 100
-    keep: true
-  stats:
-    apply: measure
-    to: spots
-    connectivity: 8
-limits:
-  fraction:
-    value: stats.area_fraction
-    max: 0.5
-"""
+from _builders import RECORD_RECIPE, git, spot_record
 
 
 def _sha(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()
-
-
-def _image(n_spots: int) -> np.ndarray:
-    image = np.full((32, 32), 20, np.uint8)
-    for i in range(n_spots):
-        image[4 + 8 * i : 8 + 8 * i, 4:8] = 200
-    return image
-
-
-def make_record(tmp_path: Path, spots: tuple[int, ...] = (1, 2), finish: bool = True) -> Path:
-    """Run a tiny lot with ``run_lot`` and write its ledger the way a run does."""
-    lot = tmp_path / "lot"
-    lot.mkdir(exist_ok=True)
-    for i, n in enumerate(spots):
-        tifffile.imwrite(lot / f"disc-{i:02d}.tif", _image(n))
-    recipe_path = tmp_path / "recipe.yaml"
-    recipe_path.write_text(RECIPE)
-    summary = run_lot(recipe_path, lot, tmp_path / "runs")
-    run = summary.run_dir
-    if (run / LEDGER_FILE).exists():  # the run writes its own ledger
-        if not finish:
-            lines = (run / LEDGER_FILE).read_bytes().splitlines(keepends=True)
-            first_output = next(i for i, line in enumerate(lines) if b'"type":"output"' in line)
-            (run / LEDGER_FILE).write_bytes(b"".join(lines[:first_output]))
-        return run
-    with LedgerWriter(run / LEDGER_FILE) as ledger:
-        ledger.append(
-            "run-start",
-            tool={"name": "lotproof", "version": __version__},
-            python=platform.python_version(),
-            libraries={"numpy": np.__version__},
-            platform=platform.platform(),
-            cpu=platform.machine(),
-            command=["lotproof", "run", "recipe.yaml", "lot"],
-            user="tester",
-            host="bench",
-            time_utc="2026-12-01T21:45:00Z",
-        )
-        recipe = summary.recipe
-        ledger.append(
-            "recipe",
-            path="recipe.yaml",
-            sha256=recipe.sha256,
-            name=recipe.name,
-            revision=recipe.revision,
-            git=None,
-        )
-        for result in summary.results:
-            for entry in result.inputs:
-                ledger.append(
-                    "input", image=result.id, **{k: v for k, v in entry.items() if k != "color"}
-                )
-            for record in result.steps:
-                ledger.append(
-                    "step",
-                    image=result.id,
-                    step=record.step,
-                    kind=record.kind,
-                    version=record.version,
-                    key=_sha(f"key {result.id} {record.step}".encode()),
-                    checksum=_sha(f"data {result.id} {record.step}".encode()),
-                    cache="computed",
-                    seconds=0.001,
-                )
-            ledger.append("image", image=result.id, status=result.status, reason=result.reason)
-        for name, lv in summary.verdicts.limits.items():
-            ledger.append(
-                "verdict",
-                limit=name,
-                value=lv.value,
-                unit=lv.unit,
-                over=lv.over,
-                bound=lv.bound_text(),
-                verdict=lv.verdict,
-            )
-        ledger.append("lot-verdict", verdict=summary.verdicts.lot)
-        if not finish:
-            return run
-        for name in summary.files:
-            data = (run / name).read_bytes()
-            ledger.append("output", path=name, sha256=_sha(data), size=len(data))
-        sums = write_sha256sums(run, list(summary.files))
-        ledger.append(
-            "output", path=SUMS_FILE, sha256=_sha(sums.read_bytes()), size=sums.stat().st_size
-        )
-        ledger.append("run-end", time_utc="2026-12-01T21:45:01Z", exit_code=summary.exit_code)
-    return run
-
-
-@pytest.fixture(scope="module")
-def record(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    return make_record(tmp_path_factory.mktemp("record"))
-
-
-def _copy(run: Path, dest: Path) -> Path:
-    import shutil
-
-    target = dest / run.name
-    shutil.copytree(run, target)
-    return target
 
 
 # ---------------------------------------------------------------- canonical lines
@@ -281,24 +156,22 @@ def test_a_complete_record_is_intact(record: Path) -> None:
     assert report.exit_code == EXIT_OK
 
 
-def test_edited_recipe_bytes_fail_verify(record: Path, tmp_path: Path) -> None:
-    run = _copy(record, tmp_path)
-    with open(run / "recipe.yaml", "ab") as handle:
+def test_edited_recipe_bytes_fail_verify(record_copy: Path) -> None:
+    with open(record_copy / "recipe.yaml", "ab") as handle:
         handle.write(b"# edited\n")
-    report = verify_run(run)
+    report = verify_run(record_copy)
     assert report.status == "altered"
     assert report.problems[0].startswith("recipe.yaml: ")
 
 
-def test_added_and_removed_files_are_reported(record: Path, tmp_path: Path) -> None:
-    run = _copy(record, tmp_path)
-    (run / "notes.txt").write_text("added later\n")
-    (run / "objects.csv").unlink()
-    problems = verify_run(run).problems
+def test_added_and_removed_files_are_reported(record_copy: Path) -> None:
+    (record_copy / "notes.txt").write_text("added later\n")
+    (record_copy / "objects.csv").unlink()
+    problems = verify_run(record_copy).problems
     assert problems[0].startswith("objects.csv: missing")
     assert any(p.startswith("notes.txt: not recorded") for p in problems)
     # SHA256SUMS still lists it: sha256sum -c would fail too, and so does verify
-    assert verify_run(run).status == "altered"
+    assert verify_run(record_copy).status == "altered"
 
 
 def test_sha256sums_disagreeing_with_the_ledger(tmp_path: Path) -> None:
@@ -316,13 +189,12 @@ def test_sha256sums_disagreeing_with_the_ledger(tmp_path: Path) -> None:
     assert report.problems == [f"{SUMS_FILE} line 1: a.txt differs from the ledger's sha256"]
 
 
-def test_truncated_ledger_is_unfinished_not_intact(record: Path, tmp_path: Path) -> None:
-    run = _copy(record, tmp_path)
-    lines = (run / LEDGER_FILE).read_bytes().splitlines(keepends=True)
+def test_truncated_ledger_is_unfinished_not_intact(record_copy: Path) -> None:
+    lines = (record_copy / LEDGER_FILE).read_bytes().splitlines(keepends=True)
     # cut before the first output event: the run stopped before recording its files
     first_output = next(i for i, line in enumerate(lines) if b'"type":"output"' in line)
-    (run / LEDGER_FILE).write_bytes(b"".join(lines[:first_output]))
-    report = verify_run(run)
+    (record_copy / LEDGER_FILE).write_bytes(b"".join(lines[:first_output]))
+    report = verify_run(record_copy)
     assert report.status == "unfinished"
     assert report.problems[0] == (
         f"{LEDGER_FILE}: the last event (line {first_output}) is not run-end; the run never finished"
@@ -332,20 +204,19 @@ def test_truncated_ledger_is_unfinished_not_intact(record: Path, tmp_path: Path)
     )
     assert report.exit_code == EXIT_INTEGRITY
     with pytest.raises(LedgerError, match="never finished"):
-        RunFolder(run).events()
+        RunFolder(record_copy).events()
 
 
-def test_truncated_mid_line_is_altered(record: Path, tmp_path: Path) -> None:
-    run = _copy(record, tmp_path)
-    data = (run / LEDGER_FILE).read_bytes()
-    (run / LEDGER_FILE).write_bytes(data[: len(data) // 2])
-    report = verify_run(run)
+def test_truncated_mid_line_is_altered(record_copy: Path) -> None:
+    data = (record_copy / LEDGER_FILE).read_bytes()
+    (record_copy / LEDGER_FILE).write_bytes(data[: len(data) // 2])
+    report = verify_run(record_copy)
     assert report.status == "altered"
     assert "no newline at the end" in report.problems[0]
 
 
 def test_a_run_that_never_finished_is_unfinished(tmp_path: Path) -> None:
-    run = make_record(tmp_path, finish=False)
+    run = spot_record(tmp_path, finish=False)
     report = verify_run(run)
     assert report.status == "unfinished"
     assert "never finished" in report.problems[0]
@@ -392,13 +263,15 @@ def _flip(data: bytes, position: int, bit: int) -> bytes:
 
 
 @settings(
-    max_examples=400, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+    max_examples=400,
+    deadline=None,
+    suppress_health_check=[HealthCheck.function_scoped_fixture],
 )
 @given(st.data())
 def test_every_flip_in_the_ledger_before_its_last_line_is_detected(
-    record: Path, data: st.DataObject
+    record_copy: Path, data: st.DataObject
 ) -> None:
-    ledger = record / LEDGER_FILE
+    ledger = record_copy / LEDGER_FILE
     original = ledger.read_bytes()
     last_start = original.rstrip(b"\n").rfind(b"\n") + 1
     position = data.draw(st.integers(0, last_start - 1), label="position")
@@ -406,7 +279,7 @@ def test_every_flip_in_the_ledger_before_its_last_line_is_detected(
     line = original[:position].count(b"\n") + 1
     try:
         ledger.write_bytes(_flip(original, position, bit))
-        report = verify_run(record)
+        report = verify_run(record_copy)
     finally:
         ledger.write_bytes(original)
     assert report.status == "altered"
@@ -419,13 +292,15 @@ def test_every_flip_in_the_ledger_before_its_last_line_is_detected(
 
 
 @settings(
-    max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+    max_examples=60,
+    deadline=None,
+    suppress_health_check=[HealthCheck.function_scoped_fixture],
 )
 @given(st.data())
 def test_every_flip_in_the_last_line_is_caught_by_the_seal(
-    record: Path, data: st.DataObject
+    record_copy: Path, data: st.DataObject
 ) -> None:
-    ledger = record / LEDGER_FILE
+    ledger = record_copy / LEDGER_FILE
     original = ledger.read_bytes()
     seal = line_hash(original.rstrip(b"\n").rsplit(b"\n", 1)[-1])
     last_start = original.rstrip(b"\n").rfind(b"\n") + 1
@@ -433,7 +308,7 @@ def test_every_flip_in_the_last_line_is_caught_by_the_seal(
     bit = data.draw(st.integers(0, 7), label="bit")
     try:
         ledger.write_bytes(_flip(original, position, bit))
-        report = verify_run(record, expected_seal=seal)
+        report = verify_run(record_copy, expected_seal=seal)
     finally:
         ledger.write_bytes(original)
     assert report.status == "altered", (position, report)
@@ -444,18 +319,20 @@ def _outputs(record: Path) -> list[str]:
 
 
 @settings(
-    max_examples=400, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+    max_examples=400,
+    deadline=None,
+    suppress_health_check=[HealthCheck.function_scoped_fixture],
 )
 @given(st.data())
-def test_every_flip_in_an_output_file_is_detected(record: Path, data: st.DataObject) -> None:
-    name = data.draw(st.sampled_from(_outputs(record)), label="file")
-    path = record / name
+def test_every_flip_in_an_output_file_is_detected(record_copy: Path, data: st.DataObject) -> None:
+    name = data.draw(st.sampled_from(_outputs(record_copy)), label="file")
+    path = record_copy / name
     original = path.read_bytes()
     position = data.draw(st.integers(0, len(original) - 1), label="position")
     bit = data.draw(st.integers(0, 7), label="bit")
     try:
         path.write_bytes(_flip(original, position, bit))
-        report = verify_run(record)
+        report = verify_run(record_copy)
     finally:
         path.write_bytes(original)
     assert report.status == "altered"
@@ -463,18 +340,11 @@ def test_every_flip_in_an_output_file_is_detected(record: Path, data: st.DataObj
 
 
 def test_the_record_is_intact_after_the_flip_tests(record: Path) -> None:
+    # the flip tests alter copies; the tests that only read share this record
     assert verify_run(record).status == "intact"
 
 
 # ---------------------------------------------------------------- signing
-
-
-@pytest.fixture(scope="module")
-def keys(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
-    folder = tmp_path_factory.mktemp("keys")
-    private, public = folder / "lab.key", folder / "lab.pub"
-    keygen(private, public)
-    return private, public
 
 
 def test_keygen_writes_pem_private_key_0600(keys: tuple[Path, Path]) -> None:
@@ -487,45 +357,42 @@ def test_keygen_writes_pem_private_key_0600(keys: tuple[Path, Path]) -> None:
     assert info.value.exit_code == EXIT_INVALID
 
 
-def test_keygen_refuses_a_run_folder(record: Path, tmp_path: Path) -> None:
-    run = _copy(record, tmp_path)
+def test_keygen_refuses_a_run_folder(record_copy: Path, tmp_path: Path) -> None:
     with pytest.raises(SigningError, match="inside the run folder"):
-        keygen(run / "kept" / "lab.key", tmp_path / "lab.pub")
+        keygen(record_copy / "kept" / "lab.key", tmp_path / "lab.pub")
     assert not (tmp_path / "lab.pub").exists()
 
 
-def test_signed_record_verifies_with_its_key(
-    record: Path, tmp_path: Path, keys: tuple[Path, Path]
-) -> None:
+def test_signed_record_verifies_with_its_key(record_copy: Path, keys: tuple[Path, Path]) -> None:
     private, public = keys
-    run = _copy(record, tmp_path)
-    seal = verify_run(run).seal
+    seal = verify_run(record_copy).seal
     assert seal is not None
-    path = write_signature(run, seal, private)
+    path = write_signature(record_copy, seal, private)
     assert path.name == SIGNATURE_FILE
     text = path.read_text()
     assert text.endswith("\n") and len(base64.b64decode(text.strip())) == 64
-    report = verify_run(run, public)
+    report = verify_run(record_copy, public)
     assert (report.status, report.signature) == ("intact", "valid")
-    assert verify_run(run).signature == "not-checked"
+    assert verify_run(record_copy).signature == "not-checked"
     with pytest.raises(LedgerWriteError, match="never replaced"):
-        write_signature(run, seal, private)
+        write_signature(record_copy, seal, private)
 
 
 def test_signature_of_another_seal_or_key_is_invalid(
-    record: Path, tmp_path: Path, keys: tuple[Path, Path]
+    record_copy: Path, tmp_path: Path, keys: tuple[Path, Path]
 ) -> None:
     private, public = keys
-    run = _copy(record, tmp_path)
-    (run / SIGNATURE_FILE).write_bytes(base64.b64encode(sign_seal("0" * 64, private)) + b"\n")
-    report = verify_run(run, public)
+    (record_copy / SIGNATURE_FILE).write_bytes(
+        base64.b64encode(sign_seal("0" * 64, private)) + b"\n"
+    )
+    report = verify_run(record_copy, public)
     assert (report.status, report.signature) == ("altered", "invalid")
     assert report.problems == [f"{SIGNATURE_FILE}: the signature does not match the seal and key"]
     other_private, other_public = tmp_path / "o.key", tmp_path / "o.pub"
     keygen(other_private, other_public)
-    (run / SIGNATURE_FILE).unlink()
-    write_signature(run, verify_run(run).seal or "", private)
-    assert verify_run(run, other_public).signature == "invalid"
+    (record_copy / SIGNATURE_FILE).unlink()
+    write_signature(record_copy, verify_run(record_copy).seal or "", private)
+    assert verify_run(record_copy, other_public).signature == "invalid"
 
 
 def test_a_key_without_a_signature_fails(record: Path, keys: tuple[Path, Path]) -> None:
@@ -534,14 +401,13 @@ def test_a_key_without_a_signature_fails(record: Path, keys: tuple[Path, Path]) 
 
 
 def test_private_key_inside_the_run_folder_is_refused(
-    record: Path, tmp_path: Path, keys: tuple[Path, Path]
+    record: Path, record_copy: Path, keys: tuple[Path, Path]
 ) -> None:
-    run = _copy(record, tmp_path)
-    inside = run / "lab.key"
+    inside = record_copy / "lab.key"
     inside.write_bytes(keys[0].read_bytes())
     with pytest.raises(SigningError, match="never sit in the run folder"):
-        write_signature(run, verify_run(record).seal or "", inside)
-    assert not (run / SIGNATURE_FILE).exists()
+        write_signature(record_copy, verify_run(record).seal or "", inside)
+    assert not (record_copy / SIGNATURE_FILE).exists()
 
 
 def test_sign_seal_refuses_what_is_not_a_seal(keys: tuple[Path, Path]) -> None:
@@ -554,59 +420,46 @@ def test_sign_seal_refuses_what_is_not_a_seal(keys: tuple[Path, Path]) -> None:
 # ---------------------------------------------------------------- git
 
 
-def run_git(repo: Path, *args: str) -> str:
-    done = subprocess.run(
-        [
-            "git",
-            "-C",
-            str(repo),
-            "-c",
-            "user.name=t",
-            "-c",
-            "user.email=t@t",
-            "-c",
-            "commit.gpgsign=false",
-            *args,
-        ],
-        capture_output=True,
-        check=True,
-        text=True,
-    )
-    return done.stdout.strip()
-
-
 @pytest.fixture()
 def repo(tmp_path: Path) -> Path:
     repo = tmp_path / "methods"
     (repo / "recipes").mkdir(parents=True)
-    run_git(repo, "init", "-q")
-    (repo / "recipes" / "a.yaml").write_text(RECIPE)
-    run_git(repo, "add", "recipes/a.yaml")
-    run_git(repo, "commit", "-q", "-m", "first")
+    git(repo, "init", "-q")
+    (repo / "recipes" / "a.yaml").write_text(RECORD_RECIPE)
+    git(repo, "add", "recipes/a.yaml")
+    git(repo, "commit", "-q", "-m", "first")
     return repo
 
 
 def test_git_info_clean_modified_untracked(repo: Path, tmp_path: Path) -> None:
-    head = run_git(repo, "rev-parse", "HEAD")
+    head = git(repo, "rev-parse", "HEAD")
     recipe = repo / "recipes" / "a.yaml"
-    assert git_info(recipe) == {"commit": head, "path_in_repo": "recipes/a.yaml", "modified": False}
-    recipe.write_text(RECIPE.replace("revision: 2", "revision: 3"))
-    assert git_info(recipe) == {"commit": head, "path_in_repo": "recipes/a.yaml", "modified": True}
+    assert git_info(recipe) == {
+        "commit": head,
+        "path_in_repo": "recipes/a.yaml",
+        "modified": False,
+    }
+    recipe.write_text(RECORD_RECIPE.replace("revision: 2", "revision: 3"))
+    assert git_info(recipe) == {
+        "commit": head,
+        "path_in_repo": "recipes/a.yaml",
+        "modified": True,
+    }
     untracked = repo / "recipes" / "b.yaml"
-    untracked.write_text(RECIPE)
+    untracked.write_text(RECORD_RECIPE)
     assert git_info(untracked) == {
         "commit": head,
         "path_in_repo": "recipes/b.yaml",
         "modified": True,
     }
     outside = tmp_path / "loose.yaml"
-    outside.write_text(RECIPE)
+    outside.write_text(RECORD_RECIPE)
     assert git_info(outside) is None
 
 
 def test_git_info_in_a_repository_without_commits(tmp_path: Path) -> None:
-    run_git(tmp_path, "init", "-q")
-    (tmp_path / "r.yaml").write_text(RECIPE)
+    git(tmp_path, "init", "-q")
+    (tmp_path / "r.yaml").write_text(RECORD_RECIPE)
     assert git_info(tmp_path / "r.yaml") == {
         "commit": None,
         "path_in_repo": "r.yaml",
@@ -618,17 +471,16 @@ def test_git_info_in_a_repository_without_commits(tmp_path: Path) -> None:
 
 
 def test_cli_verify_exit_codes_and_json(
-    record: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+    record: Path, record_copy: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
     with pytest.raises(SystemExit) as done:
         main(["verify", str(record), "--json"])
     assert done.value.code == EXIT_OK
     document = json.loads(capsys.readouterr().out)
     assert document["status"] == "intact" and document["seal"] == verify_run(record).seal
-    run = _copy(record, tmp_path)
-    (run / "images.csv").write_bytes(b"changed\n")
+    (record_copy / "images.csv").write_bytes(b"changed\n")
     with pytest.raises(SystemExit) as done:
-        main(["verify", str(run)])
+        main(["verify", str(record_copy)])
     assert done.value.code == EXIT_INTEGRITY
     out = capsys.readouterr().out
     assert "ALTERED" in out and "images.csv" in out

@@ -20,50 +20,23 @@ from lotproof.runner.record.reading import RunFolder
 from lotproof.runner.record.verify import verify_run
 from lotproof.steps import REGISTRY
 
-RECIPE = """\
-format: lotproof/1
-name: rerun-test
-revision: 1
-pixel_size: 0.5 um
-inputs:
-  section: "*.tif"
-steps:
-  spots:
-    apply: threshold
-    to: section
-    method: otsu
-  clean:
-    apply: open
-    to: spots
-    radius: 0.5 um
-  stats:
-    apply: measure
-    to: clean
-limits:
-  fraction:
-    value: stats.area_fraction
-    max: 0.5
-"""
+from _builders import noisy_squares, recipe_text, seeded_lot, write_recipe
+
+#: Otsu threshold, opening, measure: three steps per image
+RECIPE = recipe_text("rerun-test", method="otsu", clean=True, connectivity=None)
 
 
 def _image(seed: int) -> np.ndarray:
-    rng = np.random.default_rng(seed)
-    image = rng.integers(0, 60, (80, 80)).astype(np.uint8)
-    for _ in range(5):
-        y, x = rng.integers(5, 70, 2)
-        image[y : y + 6, x : x + 6] = 220
-    return image
+    """80x80 uint8 noise with five bright 6x6 squares at seeded places."""
+    return noisy_squares(seed, side=80, count=5, square=6, bright=220, corners=(5, 70))
 
 
 @pytest.fixture()
 def recorded(tmp_path: Path) -> tuple[Path, Path]:
-    lot = tmp_path / "lot"
-    lot.mkdir()
-    for i in range(3):
-        tifffile.imwrite(lot / f"s{i}.tif", _image(i))
+    """A cached run of three images and one broken file (each test alters its lot or record)."""
+    lot = seeded_lot(tmp_path, 3, _image, names="s{}.tif")
     (lot / "broken.tif").write_bytes(b"II*\x00\x08\x00\x00\x00")
-    recipe = tmp_path / "recipe.yaml"
-    recipe.write_text(RECIPE)
+    recipe = write_recipe(tmp_path, RECIPE)
     summary = run_lot(recipe, lot, tmp_path / "runs", store=DiskStore(tmp_path / "cache"))
     return summary.run_dir, lot
 
@@ -185,12 +158,8 @@ def test_strict_refuses_other_library_versions(
 
 
 def test_interrupted_run_is_unfinished(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    lot = tmp_path / "lot"
-    lot.mkdir()
-    for i in range(3):
-        tifffile.imwrite(lot / f"s{i}.tif", _image(i))
-    recipe = tmp_path / "recipe.yaml"
-    recipe.write_text(RECIPE)
+    lot = seeded_lot(tmp_path, 3, _image, names="s{}.tif")
+    recipe = write_recipe(tmp_path, RECIPE)
     calls = {"n": 0}
 
     def stop(result):  # type: ignore[no-untyped-def]

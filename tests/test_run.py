@@ -15,58 +15,14 @@ from lotproof import load_recipe, run_lot
 from lotproof.runner.cli.main import main
 from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_LIMIT_FAILED, EXIT_OK
 
+from _builders import recipe_text, spot_image, spot_lot, write_recipe
+
 PIXEL_UM = 0.5
 
-RECIPE = """\
-format: lotproof/1
-name: spot-test
-revision: 2
-pixel_size: 0.5 um
-inputs:
-  section: "*.tif"
-steps:
-  spots:
-    apply: threshold
-    to: section
-    method: fixed
-    level: 100
-    keep: true
-  stats:
-    apply: measure
-    to: spots
-    connectivity: 8
-limits:
-  fraction:
-    value: stats.area_fraction
-    max: {max_fraction}
-  mean-fraction:
-    value: stats.area_fraction
-    over: lot-mean
-    max: 1
-"""
-
-
-def _image(n_spots: int) -> np.ndarray:
-    """A 64x64 uint8 image with ``n_spots`` bright 4x4 squares on a dark field."""
-    image = np.full((64, 64), 20, np.uint8)
-    for i in range(n_spots):
-        y, x = 8 + 16 * (i // 3), 8 + 16 * (i % 3)
-        image[y : y + 4, x : x + 4] = 200
-    return image
-
-
-def _lot(tmp_path: Path, spots: list[int]) -> Path:
-    lot = tmp_path / "lot"
-    lot.mkdir()
-    for i, n in enumerate(spots):
-        tifffile.imwrite(lot / f"disc-{i:02d}.tif", _image(n))
-    return lot
-
-
-def _recipe(tmp_path: Path, max_fraction: float = 0.5, text: str = RECIPE) -> Path:
-    path = tmp_path / "recipe.yaml"
-    path.write_text(text.format(max_fraction=max_fraction))
-    return path
+#: fixed threshold, spots kept; area fraction at most 0.5 per image, lot mean at most 1
+RECIPE = recipe_text("spot-test", revision=2, keep=True, lot_mean=True)
+#: the same with the area fraction at most 0.01 per image
+STRICT_RECIPE = recipe_text("spot-test", revision=2, keep=True, lot_mean=True, max_fraction=0.01)
 
 
 def _tree_digest(folder: Path) -> dict[str, str]:
@@ -78,8 +34,8 @@ def _tree_digest(folder: Path) -> dict[str, str]:
 
 
 def test_all_pass_writes_the_run_folder(tmp_path: Path) -> None:
-    lot = _lot(tmp_path, [1, 2, 3])
-    summary = run_lot(_recipe(tmp_path), lot, tmp_path / "runs")
+    lot = spot_lot(tmp_path, [1, 2, 3])
+    summary = run_lot(write_recipe(tmp_path, RECIPE), lot, tmp_path / "runs")
     assert summary.verdicts.lot == "pass"
     assert summary.exit_code == EXIT_OK
     run = summary.run_dir
@@ -111,8 +67,8 @@ def test_all_pass_writes_the_run_folder(tmp_path: Path) -> None:
 
 
 def test_failing_limit_gives_exit_1(tmp_path: Path) -> None:
-    lot = _lot(tmp_path, [1, 9])  # 9 spots: 144/4096 = 0.035
-    summary = run_lot(_recipe(tmp_path, max_fraction=0.01), lot, tmp_path / "runs")
+    lot = spot_lot(tmp_path, [1, 9])  # 9 spots: 144/4096 = 0.035
+    summary = run_lot(write_recipe(tmp_path, STRICT_RECIPE), lot, tmp_path / "runs")
     assert summary.verdicts.lot == "fail"
     assert summary.exit_code == EXIT_LIMIT_FAILED
     per_image = summary.verdicts.limits["fraction"].per_image
@@ -121,11 +77,11 @@ def test_failing_limit_gives_exit_1(tmp_path: Path) -> None:
 
 
 def test_bad_image_is_incomplete_others_run(tmp_path: Path) -> None:
-    lot = _lot(tmp_path, [1, 2])
+    lot = spot_lot(tmp_path, [1, 2])
     (lot / "disc-09.tif").write_bytes(b"II*\x00" + b"\x00" * 4)  # a TIFF header and nothing else
     (lot / "disc-10.tif").write_bytes(b"")
     before = _tree_digest(lot)
-    summary = run_lot(_recipe(tmp_path), lot, tmp_path / "runs")
+    summary = run_lot(write_recipe(tmp_path, RECIPE), lot, tmp_path / "runs")
     assert _tree_digest(lot) == before  # the lot folder is never changed
     assert summary.verdicts.lot == "incomplete"
     assert summary.exit_code == EXIT_BAD_INPUT
@@ -140,9 +96,9 @@ def test_bad_image_is_incomplete_others_run(tmp_path: Path) -> None:
 
 
 def test_bad_image_with_failing_limit_is_never_pass(tmp_path: Path) -> None:
-    lot = _lot(tmp_path, [9])
+    lot = spot_lot(tmp_path, [9])
     (lot / "disc-05.tif").write_bytes(b"not an image at all")
-    summary = run_lot(_recipe(tmp_path, max_fraction=0.01), lot, tmp_path / "runs")
+    summary = run_lot(write_recipe(tmp_path, STRICT_RECIPE), lot, tmp_path / "runs")
     assert summary.verdicts.lot == "fail"
     assert summary.exit_code == EXIT_BAD_INPUT
 
@@ -150,23 +106,23 @@ def test_bad_image_with_failing_limit_is_never_pass(tmp_path: Path) -> None:
 def test_empty_lot_is_incomplete(tmp_path: Path) -> None:
     lot = tmp_path / "lot"
     lot.mkdir()
-    summary = run_lot(_recipe(tmp_path), lot, tmp_path / "runs")
+    summary = run_lot(write_recipe(tmp_path, RECIPE), lot, tmp_path / "runs")
     assert summary.verdicts.lot == "incomplete"
     assert summary.exit_code == EXIT_BAD_INPUT
 
 
 def test_kept_step_is_saved_with_its_dtype(tmp_path: Path) -> None:
-    lot = _lot(tmp_path, [2])
-    summary = run_lot(_recipe(tmp_path), lot, tmp_path / "runs")
+    lot = spot_lot(tmp_path, [2])
+    summary = run_lot(write_recipe(tmp_path, RECIPE), lot, tmp_path / "runs")
     kept = summary.run_dir / "kept" / "disc-00" / "spots.tif"
     mask = tifffile.imread(kept)
     assert mask.dtype == bool
-    np.testing.assert_array_equal(mask, _image(2) > 100)
+    np.testing.assert_array_equal(mask, spot_image(2) > 100)
 
 
 def test_second_run_gets_a_new_folder(tmp_path: Path) -> None:
-    lot = _lot(tmp_path, [1])
-    recipe = load_recipe(_recipe(tmp_path))
+    lot = spot_lot(tmp_path, [1])
+    recipe = load_recipe(write_recipe(tmp_path, RECIPE))
     first = run_lot(recipe, lot, tmp_path / "runs").run_dir
     first_files = _tree_digest(first)
     second = run_lot(recipe, lot, tmp_path / "runs").run_dir
@@ -175,9 +131,10 @@ def test_second_run_gets_a_new_folder(tmp_path: Path) -> None:
 
 
 def test_json_output_keys(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    lot = _lot(tmp_path, [1, 2])
+    lot = spot_lot(tmp_path, [1, 2])
+    recipe = write_recipe(tmp_path, RECIPE)
     with pytest.raises(SystemExit) as exit_info:
-        main(["run", str(_recipe(tmp_path)), str(lot), "--out", str(tmp_path / "runs"), "--json"])
+        main(["run", str(recipe), str(lot), "--out", str(tmp_path / "runs"), "--json"])
     assert exit_info.value.code == EXIT_OK
     document = json.loads(capsys.readouterr().out)
     assert {"run_dir", "verdict", "images", "limits"} <= set(document)
@@ -191,9 +148,9 @@ def test_json_output_keys(tmp_path: Path, capsys: pytest.CaptureFixture[str]) ->
 def test_colour_image_needs_a_gray_step(tmp_path: Path) -> None:
     lot = tmp_path / "lot"
     lot.mkdir()
-    rgb = np.stack([_image(1)] * 3, axis=-1)
+    rgb = np.stack([spot_image(1)] * 3, axis=-1)
     tifffile.imwrite(lot / "colour.tif", rgb, photometric="rgb")
-    summary = run_lot(_recipe(tmp_path), lot, tmp_path / "runs")
+    summary = run_lot(write_recipe(tmp_path, RECIPE), lot, tmp_path / "runs")
     (result,) = summary.results
     assert result.status == "incomplete"
     assert "colour image" in result.reason and "apply: gray" in result.reason
@@ -202,7 +159,7 @@ def test_colour_image_needs_a_gray_step(tmp_path: Path) -> None:
         "  spots:\n    apply: threshold\n    to: section",
         "  luma:\n    apply: gray\n    to: section\n  spots:\n    apply: threshold\n    to: luma",
     )
-    summary = run_lot(_recipe(tmp_path, text=with_gray), lot, tmp_path / "runs")
+    summary = run_lot(write_recipe(tmp_path, with_gray), lot, tmp_path / "runs")
     assert summary.results[0].status == "ok"
     assert summary.results[0].values[("stats", "count")] == 1
 
@@ -210,15 +167,15 @@ def test_colour_image_needs_a_gray_step(tmp_path: Path) -> None:
 def test_from_image_needs_a_calibration(tmp_path: Path) -> None:
     lot = tmp_path / "lot"
     lot.mkdir()
-    tifffile.imwrite(lot / "plain.tif", _image(1))
+    tifffile.imwrite(lot / "plain.tif", spot_image(1))
     tifffile.imwrite(
         lot / "calibrated.tif",
-        _image(1),
+        spot_image(1),
         resolution=(1e4 / 0.25, 1e4 / 0.25),
         resolutionunit="CENTIMETER",
     )
     text = RECIPE.replace("pixel_size: 0.5 um", "pixel_size: from-image")
-    summary = run_lot(_recipe(tmp_path, text=text), lot, tmp_path / "runs")
+    summary = run_lot(write_recipe(tmp_path, text), lot, tmp_path / "runs")
     by_id = {r.id: r for r in summary.results}
     assert by_id["plain.tif"].status == "incomplete"
     assert "no calibration" in by_id["plain.tif"].reason
@@ -231,37 +188,37 @@ def test_from_image_needs_a_calibration(tmp_path: Path) -> None:
 def test_jpeg_is_refused_unless_allowed(tmp_path: Path) -> None:
     lot = tmp_path / "lot"
     lot.mkdir()
-    Image.fromarray(_image(1)).save(lot / "shot.jpg", quality=95)
+    Image.fromarray(spot_image(1)).save(lot / "shot.jpg", quality=95)
     text = RECIPE.replace('"*.tif"', '"*.jpg"')
-    summary = run_lot(_recipe(tmp_path, text=text), lot, tmp_path / "runs")
+    summary = run_lot(write_recipe(tmp_path, text), lot, tmp_path / "runs")
     assert summary.results[0].status == "incomplete"
     assert "JPEG is lossy" in summary.results[0].reason
     allowed = text.replace("pixel_size: 0.5 um", "pixel_size: 0.5 um\nlossy_input: allow")
-    summary = run_lot(_recipe(tmp_path, text=allowed), lot, tmp_path / "runs")
+    summary = run_lot(write_recipe(tmp_path, allowed), lot, tmp_path / "runs")
     assert summary.results[0].status == "ok"
 
 
 def test_png_is_read(tmp_path: Path) -> None:
     lot = tmp_path / "lot"
     lot.mkdir()
-    Image.fromarray(_image(3)).save(lot / "a.png")
+    Image.fromarray(spot_image(3)).save(lot / "a.png")
     text = RECIPE.replace('"*.tif"', '"*.png"')
-    summary = run_lot(_recipe(tmp_path, text=text), lot, tmp_path / "runs")
+    summary = run_lot(write_recipe(tmp_path, text), lot, tmp_path / "runs")
     assert summary.results[0].values[("stats", "count")] == 3
 
 
 def test_wrong_extension_is_refused(tmp_path: Path) -> None:
     lot = tmp_path / "lot"
     lot.mkdir()
-    Image.fromarray(_image(1)).save(lot / "disguised.tif", format="PNG")
-    summary = run_lot(_recipe(tmp_path), lot, tmp_path / "runs")
+    Image.fromarray(spot_image(1)).save(lot / "disguised.tif", format="PNG")
+    summary = run_lot(write_recipe(tmp_path, RECIPE), lot, tmp_path / "runs")
     assert summary.results[0].status == "incomplete"
     assert "content is PNG" in summary.results[0].reason
 
 
 def test_threshold_level_is_recorded(tmp_path: Path) -> None:
-    lot = _lot(tmp_path, [1])
-    summary = run_lot(_recipe(tmp_path), lot, tmp_path / "runs")
+    lot = spot_lot(tmp_path, [1])
+    summary = run_lot(write_recipe(tmp_path, RECIPE), lot, tmp_path / "runs")
     assert summary.results[0].values[("spots", "level")] == 100
     header = (summary.run_dir / "images.csv").read_text().splitlines()[0]
     assert "spots.level [-]" in header
@@ -273,8 +230,8 @@ def test_resolved_parameters_in_pixels(tmp_path: Path) -> None:
         "  clean:\n    apply: open\n    to: spots\n    radius: 1 um\n"
         "  stats:\n    apply: measure\n    to: clean",
     )
-    lot = _lot(tmp_path, [1])
-    summary = run_lot(_recipe(tmp_path, text=text), lot, tmp_path / "runs")
+    lot = spot_lot(tmp_path, [1])
+    summary = run_lot(write_recipe(tmp_path, text), lot, tmp_path / "runs")
     resolved = json.loads((summary.run_dir / "resolved.json").read_text())
     clean = resolved["steps"]["clean"]
     assert clean["params"]["radius"] == "1 um"

@@ -41,32 +41,16 @@ from lotproof.runner.record.folder import create_run_folder
 from lotproof.runner.record.layout import image_folder
 from lotproof.runner.record.verify import verify_run
 
+from _builders import recipe_text, write_lot, write_recipe
+
 ROOT = Path(__file__).resolve().parents[1]
 
-RECIPE = """\
-format: lotproof/1
-name: security-test
-revision: 1
-pixel_size: 0.5 um
-inputs:
-  section: "*.tif"
-steps:
-  spots:
-    apply: threshold
-    to: section
-    method: otsu
-    keep: true
-  stats:
-    apply: measure
-    to: spots
-limits:
-  fraction:
-    value: stats.area_fraction
-    max: 0.5
-"""
+#: Otsu threshold (mask kept) and measure
+RECIPE = recipe_text("security-test", method="otsu", keep=True, connectivity=None)
 
 
 def _image(seed: int) -> np.ndarray:
+    # kept here: no other module draws this image (seeded noise under one fixed bright block)
     rng = np.random.default_rng(seed)
     image = rng.integers(0, 50, (48, 48)).astype(np.uint8)
     image[10:20, 12:24] = 220
@@ -74,18 +58,7 @@ def _image(seed: int) -> np.ndarray:
 
 
 def _lot(tmp_path: Path, names: tuple[str, ...] = ("a.tif", "b.tif")) -> Path:
-    lot = tmp_path / "lot"
-    lot.mkdir()
-    for i, name in enumerate(names):
-        (lot / name).parent.mkdir(parents=True, exist_ok=True)
-        tifffile.imwrite(lot / name, _image(i))
-    return lot
-
-
-def _recipe(tmp_path: Path, text: str = RECIPE) -> Path:
-    path = tmp_path / "recipe.yaml"
-    path.write_text(text)
-    return path
+    return write_lot(tmp_path, {name: _image(i) for i, name in enumerate(names)})
 
 
 def _exit(argv: list[str]) -> int | str | None:
@@ -127,7 +100,7 @@ def test_python_tags_are_refused_and_never_constructed(
 ) -> None:
     canary = tmp_path / "constructed"
     value = tagged.format(canary=json.dumps(str(canary)))
-    path = _recipe(tmp_path, RECIPE.replace("method: otsu", f"method: {value}"))
+    path = write_recipe(tmp_path, RECIPE.replace("method: otsu", f"method: {value}"))
     assert _exit(["check", str(path)]) == EXIT_INVALID
     err = capsys.readouterr().err
     assert f"{path}:11:13: explicit tag 'tag:yaml.org,2002:python/" in err, err
@@ -221,7 +194,7 @@ def test_nothing_in_a_recipe_is_evaluated(
     canary = tmp_path / "evaluated"
     edited = RECIPE.replace(old, new.format(canary=json.dumps(str(canary)).replace('"', "'")))
     assert edited != RECIPE
-    path = _recipe(tmp_path, edited)
+    path = write_recipe(tmp_path, edited)
     lot = _lot(tmp_path)
     assert (
         _exit(["run", str(path), str(lot), "--out", str(tmp_path / "runs"), "--no-cache"])
@@ -252,7 +225,7 @@ def test_nothing_in_a_recipe_is_evaluated(
 def test_globs_that_leave_the_lot_are_recipe_errors(
     tmp_path: Path, capsys: pytest.CaptureFixture[str], pattern: str
 ) -> None:
-    path = _recipe(tmp_path, RECIPE.replace('"*.tif"', f'"{pattern}"'))
+    path = write_recipe(tmp_path, RECIPE.replace('"*.tif"', f'"{pattern}"'))
     lot = _lot(tmp_path)
     assert _exit(["check", str(path)]) == EXIT_INVALID
     assert f"{path}:6:12: inputs.section: an input glob" in capsys.readouterr().err
@@ -282,7 +255,7 @@ def test_symbolic_links_out_of_the_lot_are_refused_per_image(tmp_path: Path) -> 
     (lot / "link.tif").symlink_to(outside / "x.tif")  # a file outside
     (lot / "inner" / "up").symlink_to(outside)  # a folder outside
     (lot / "inside.tif").symlink_to(lot / "a.tif")  # inside the lot: allowed
-    recipe = _recipe(
+    recipe = write_recipe(
         tmp_path, RECIPE.replace('"*.tif"', '"**/*.tif"').replace("keep: true", "keep: false")
     )
     out = tmp_path / "runs"
@@ -305,7 +278,7 @@ def test_symbolic_links_out_of_the_lot_are_refused_per_image(tmp_path: Path) -> 
     outside_digest = hashlib.sha256((outside / "x.tif").read_bytes()).hexdigest()
     assert outside_digest not in json.dumps(recorded)  # its bytes were never read
     # the folder link, named directly by a glob
-    direct = _recipe(tmp_path, RECIPE.replace('"*.tif"', '"inner/up/*.tif"'))
+    direct = write_recipe(tmp_path, RECIPE.replace('"*.tif"', '"inner/up/*.tif"'))
     assert (
         _exit(["run", str(direct), str(lot), "--out", str(out), "--no-cache", "-j", "1"])
         == EXIT_BAD_INPUT
@@ -319,11 +292,12 @@ def test_symbolic_links_out_of_the_lot_are_refused_per_image(tmp_path: Path) -> 
 
 
 def test_run_folder_names_are_sanitised(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    path = _recipe(tmp_path, RECIPE.replace("name: security-test", "name: ../../escape"))
+    path = write_recipe(tmp_path, RECIPE.replace("name: security-test", "name: ../../escape"))
     assert _exit(["check", str(path)]) == EXIT_INVALID
     assert "must be a slug" in capsys.readouterr().err
     # even a name that never passed the schema stays one folder directly under --out
-    recipe = dataclasses.replace(load_recipe(_recipe(tmp_path)), name="../../x /y\\z\n")
+    loaded = load_recipe(write_recipe(tmp_path, RECIPE))
+    recipe = dataclasses.replace(loaded, name="../../x /y\\z\n")
     out = tmp_path / "runs"
     run = create_run_folder(out, recipe)
     assert run.parent == out and run.resolve().parent == out.resolve()
@@ -337,10 +311,10 @@ def test_run_folder_names_are_sanitised(tmp_path: Path, capsys: pytest.CaptureFi
 
 def test_lot_files_with_odd_names_stay_inside_the_run_folder(tmp_path: Path) -> None:
     lot = _lot(tmp_path, ("we ird;$(touch x).tif", "sub dir/..b.tif"))
+    recipe = write_recipe(tmp_path, RECIPE)
     out = tmp_path / "runs"
-    assert _exit(
-        ["run", str(_recipe(tmp_path)), str(lot), "--out", str(out), "--no-cache", "-j", "1"]
-    ) in (EXIT_OK, EXIT_LIMIT_FAILED)
+    argv = ["run", str(recipe), str(lot), "--out", str(out), "--no-cache", "-j", "1"]
+    assert _exit(argv) in (EXIT_OK, EXIT_LIMIT_FAILED)
     (run,) = list(out.iterdir())
     for path in run.rglob("*"):
         assert path.resolve().is_relative_to(run.resolve())
@@ -355,7 +329,7 @@ def test_lot_files_with_odd_names_stay_inside_the_run_folder(tmp_path: Path) -> 
 def test_a_run_leaves_the_lot_exactly_as_it_was(tmp_path: Path) -> None:
     lot = _lot(tmp_path, ("a.tif", "b.tif", "deeper/c.tif"))
     (lot / "notes.txt").write_text("not an input\n")
-    recipe = _recipe(tmp_path, RECIPE.replace('"*.tif"', '"**/*.tif"'))
+    recipe = write_recipe(tmp_path, RECIPE.replace('"*.tif"', '"**/*.tif"'))
     before = _tree(lot)
     for jobs in ("1", "2"):
         code = _exit(
@@ -383,9 +357,8 @@ def test_output_or_cache_inside_the_lot_is_refused(
     before = _tree(lot)
     out = lot / "runs" if inside == "out" else tmp_path / "runs"
     cache = lot / ".cache" if inside == "cache" else tmp_path / "cache"
-    code = _exit(
-        ["run", str(_recipe(tmp_path)), str(lot), "--out", str(out), "--cache", str(cache)]
-    )
+    recipe = write_recipe(tmp_path, RECIPE)
+    code = _exit(["run", str(recipe), str(lot), "--out", str(out), "--cache", str(cache)])
     assert code == EXIT_INVALID
     err = capsys.readouterr().err
     assert "lies inside the lot folder" in err and "Traceback" not in err
@@ -445,7 +418,7 @@ def test_lot_files_are_opened_read_only_and_never_changed(tmp_path: Path) -> Non
     lot = _lot(tmp_path)
     argv = [
         "run",
-        str(_recipe(tmp_path)),
+        str(write_recipe(tmp_path, RECIPE)),
         str(lot),
         "--out",
         str(tmp_path / "runs"),
@@ -480,7 +453,7 @@ def test_a_recipe_over_the_size_bound_is_refused_before_parsing(
 ) -> None:
     at_bound = RECIPE + "#" * (MAX_RECIPE_BYTES - len(RECIPE) - 1) + "\n"
     assert len(at_bound.encode()) == MAX_RECIPE_BYTES == 1_000_000
-    ok = _recipe(tmp_path, at_bound)
+    ok = write_recipe(tmp_path, at_bound)
     assert _exit(["check", str(ok)]) == EXIT_OK
     over = tmp_path / "over.yaml"
     over.write_text(at_bound + "#")

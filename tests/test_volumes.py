@@ -39,6 +39,8 @@ from lotproof.steps.units import (
     resolve_to_px,
 )
 
+from _builders import write_recipe
+
 VOLUME = (np.arange(6 * 8 * 10) % 200).astype(np.uint8).reshape(6, 8, 10)
 
 
@@ -84,6 +86,7 @@ def test_pages_of_different_shapes_are_refused(tmp_path: Path) -> None:
 
 # ---------------------------------------------------------------- recipe sizes
 
+# kept here, not built by _builders.recipe_text: a 3-D recipe whose size line each test writes
 BASE = """\
 format: lotproof/1
 name: vol-test
@@ -114,9 +117,7 @@ limits:
 
 
 def _recipe(tmp_path: Path, size: str) -> Path:
-    path = tmp_path / "recipe.yaml"
-    path.write_text(BASE.format(size=size))
-    return path
+    return write_recipe(tmp_path, BASE.format(size=size))
 
 
 def test_voxel_size_is_read_x_first(tmp_path: Path) -> None:
