@@ -43,20 +43,21 @@ rounding, TIFF tags, compression level) is spelled out, so running the script
 twice gives byte-identical files. The gaussian kernels are built with scalar
 ``math.exp``; the pixel arithmetic is additions, products and square roots. The
 deflate stream comes from the zlib library Python links against: another zlib
-build may compress the same pixels to other bytes.
+build may compress the same pixels to other bytes. What the three demo
+generators share (streams, gaussians, rounding, TIFF writing, truth file,
+command line) is in ``demo_run/_common.py``.
 """
 
 from __future__ import annotations
 
+import importlib.util
 import json
 import math
-import sys
 from pathlib import Path
+from types import ModuleType
 from typing import Any
 
 import numpy as np
-import tifffile
-from scipy import ndimage
 
 __all__ = [
     "HIGH_POROSITY_IMAGE",
@@ -74,6 +75,20 @@ __all__ = [
     "truth_json",
 ]
 
+
+def _load_common() -> ModuleType:
+    """``demo_run/_common.py``, loaded by its path: the generators are scripts, not a package."""
+    path = Path(__file__).resolve().parent / "_common.py"
+    spec = importlib.util.spec_from_file_location("lotproof_demo_common", path)
+    if spec is None or spec.loader is None:
+        raise ImportError(f"cannot load {path}")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+_common = _load_common()
+
 #: Lot identifier; images are named ``FD-2611-01.tif`` ... ``FD-2611-08.tif``.
 LOT = "FD-2611"
 #: Number of images (one per disc) in the lot.
@@ -88,7 +103,7 @@ RESOLUTION_PX_PER_CM = (200000, 13)
 #: The one disc whose porosity is drawn above the 0.18 acceptance limit.
 HIGH_POROSITY_IMAGE = 6
 #: Name of the ground-truth file, written beside the lot folder.
-TRUTH_FILE = "lot-truth.json"
+TRUTH_FILE = _common.TRUTH_FILE
 
 _SEED_BASE = 2611
 
@@ -129,32 +144,25 @@ PARAMETERS: dict[str, Any] = {
 
 def image_name(index: int) -> str:
     """File name of image ``index`` (1-based): ``FD-2611-01.tif``."""
-    return f"{LOT}-{index:02d}.tif"
-
-
-def _gaussian_weights(sigma_px: float) -> np.ndarray:
-    # Scalar math.exp, so no vectorised transcendental function enters the pixels.
-    radius = math.ceil(PARAMETERS["gaussian_truncate_sigmas"] * sigma_px)
-    raw = [math.exp(-0.5 * (k / sigma_px) ** 2) for k in range(-radius, radius + 1)]
-    total = math.fsum(raw)
-    return np.array([w / total for w in raw], dtype=np.float64)
+    return _common.image_name(LOT, index)
 
 
 def _gaussian(image: np.ndarray, sigma_px: float) -> np.ndarray:
-    weights = _gaussian_weights(sigma_px)
-    mode = PARAMETERS["boundary_mode"]
-    out = ndimage.correlate1d(image, weights, axis=0, mode=mode)
-    return ndimage.correlate1d(out, weights, axis=1, mode=mode)
+    p = PARAMETERS
+    return _common.gaussian(image, sigma_px, p["gaussian_truncate_sigmas"], p["boundary_mode"])
 
 
 def _relief(rng: np.random.Generator) -> np.ndarray:
     """Smooth metal relief of standard deviation ``metal_texture_sigma``."""
-    sigma_px = PARAMETERS["metal_texture_correlation_px"]
-    weights = _gaussian_weights(sigma_px)
-    # Filtered unit white noise has variance (sum of w^2)^2 for a separable kernel;
-    # dividing by that closed form avoids a data-dependent (summation-order) scale.
-    scale = PARAMETERS["metal_texture_sigma"] / math.fsum(float(w) * float(w) for w in weights)
-    return _gaussian(rng.standard_normal(SHAPE), sigma_px) * scale
+    p = PARAMETERS
+    return _common.smooth_noise(
+        rng,
+        SHAPE,
+        p["metal_texture_correlation_px"],
+        p["metal_texture_sigma"],
+        p["gaussian_truncate_sigmas"],
+        p["boundary_mode"],
+    )
 
 
 def _draw_ecds_px(rng: np.random.Generator, target_area_px: float) -> list[float]:
@@ -329,7 +337,7 @@ def _render(index: int) -> tuple[np.ndarray, dict[str, Any], np.ndarray, np.ndar
     rows, cols = SHAPE
     # One stream per image, drawn in a fixed order: targets, pores, relief,
     # scratches, illumination, noise.
-    rng = np.random.Generator(np.random.PCG64([_SEED_BASE, index]))
+    rng = _common.stream(_SEED_BASE, index)
 
     if index == HIGH_POROSITY_IMAGE:
         target = float(p["pore_fraction_target_high"])
@@ -366,7 +374,7 @@ def _render(index: int) -> tuple[np.ndarray, dict[str, Any], np.ndarray, np.ndar
     field, ax, ay = _illumination(rng)
     signal = _gaussian(scene * field, p["blur_sigma_px"])
     signal += p["noise_sigma"] * rng.standard_normal(SHAPE)
-    image = np.clip(np.rint(signal), 0.0, 65535.0).astype(np.uint16)
+    image = _common.quantize(signal, np.uint16)
 
     truth = {
         "file": image_name(index),
@@ -406,22 +414,16 @@ def render(index: int) -> tuple[np.ndarray, dict[str, Any]]:
 
 
 def _write_tiff(path: Path, image: np.ndarray, index: int) -> None:
-    tifffile.imwrite(
+    _common.write_plane(
         path,
         image,
-        photometric="minisblack",
-        compression="zlib",
-        compressionargs={"level": 6},
-        predictor=True,
-        resolution=(RESOLUTION_PX_PER_CM, RESOLUTION_PX_PER_CM),
-        resolutionunit="CENTIMETER",
+        level=6,
+        resolution_px_per_cm=RESOLUTION_PX_PER_CM,
         description=(
             f"lotproof demo lot {LOT}, disc {index:02d}: "
             "synthetic cross-section made by demo_run/generate.py, not a micrograph"
         ),
         software="lotproof demo_run/generate.py",
-        datetime=False,
-        metadata=None,
     )
 
 
@@ -459,19 +461,17 @@ def generate(out_dir: str | Path) -> dict[str, Any]:
 
 def truth_json(truth: dict[str, Any]) -> str:
     """The text of ``lot-truth.json``: sorted keys, ASCII, one trailing newline."""
-    return json.dumps(truth, indent=1, sort_keys=True, ensure_ascii=True) + "\n"
+    return _common.truth_json(truth)
 
 
 def main(argv: list[str] | None = None) -> int:
     """Command line: ``python demo_run/generate.py [OUT_DIR]``; returns the exit code."""
-    args = sys.argv[1:] if argv is None else argv
-    if len(args) > 1 or (args and args[0].startswith("-")):
-        print("usage: python demo_run/generate.py [OUT_DIR]", file=sys.stderr)
-        return 2
-    out = Path(args[0]) if args else Path(__file__).resolve().parent / LOT
-    truth = generate(out)
-    (out.resolve().parent / TRUTH_FILE).write_text(truth_json(truth), encoding="utf-8")
-    return 0
+    return _common.run_cli(
+        argv,
+        script="demo_run/generate.py",
+        default_out=Path(__file__).resolve().parent / LOT,
+        generate=generate,
+    )
 
 
 if __name__ == "__main__":

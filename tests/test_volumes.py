@@ -47,9 +47,10 @@ VOLUME = (np.arange(6 * 8 * 10) % 200).astype(np.uint8).reshape(6, 8, 10)
 # ---------------------------------------------------------------- reading volumes
 
 
-def test_imagej_ome_and_page_stacks_load_as_volumes(tmp_path: Path) -> None:
+def test_key_value_ome_and_page_stacks_load_as_volumes(tmp_path: Path) -> None:
+    # the unit and spacing keys of the key=value text in the ImageDescription (imagej=True)
     tifffile.imwrite(
-        tmp_path / "ij.tif",
+        tmp_path / "keyvalue.tif",
         VOLUME,
         imagej=True,
         resolution=(1 / 0.8, 1 / 0.8),
@@ -64,15 +65,15 @@ def test_imagej_ome_and_page_stacks_load_as_volumes(tmp_path: Path) -> None:
     with tifffile.TiffWriter(tmp_path / "pages.tif") as writer:
         for page in VOLUME:
             writer.write(page, contiguous=False)
-    for name in ("ij", "ome", "pages"):
+    for name in ("keyvalue", "ome", "pages"):
         image = read_image(tmp_path / f"{name}.tif", tmp_path)
         np.testing.assert_array_equal(image.data, VOLUME)
-    assert read_image(tmp_path / "ij.tif", tmp_path).calibration.pixel_size_um == pytest.approx(
-        (1.2, 0.8, 0.8)
-    )
-    assert read_image(tmp_path / "ome.tif", tmp_path).calibration.pixel_size_um == pytest.approx(
-        (1.2, 0.8, 0.8)
-    )
+    described = read_image(tmp_path / "keyvalue.tif", tmp_path).calibration
+    assert described.pixel_size_um == pytest.approx((1.2, 0.8, 0.8))
+    assert described.source == "ImageDescription unit and resolution tags"
+    ome = read_image(tmp_path / "ome.tif", tmp_path).calibration
+    assert ome.pixel_size_um == pytest.approx((1.2, 0.8, 0.8))
+    assert ome.source == "OME-XML PhysicalSize"
     assert read_image(tmp_path / "pages.tif", tmp_path).calibration.pixel_size_um is None
 
 

@@ -56,19 +56,21 @@ rounding, TIFF tags, compression level) is spelled out, so running the script
 twice gives byte-identical files. The gaussian kernels are built with scalar
 ``math.exp``; the pixel arithmetic is additions, products and square roots. The
 deflate stream comes from the zlib library Python links against: another zlib
-build may compress the same pixels to other bytes.
+build may compress the same pixels to other bytes. What the three demo
+generators share (streams, gaussians, rounding, TIFF writing, truth file,
+command line) is in ``demo_run/_common.py``.
 """
 
 from __future__ import annotations
 
+import importlib.util
 import json
 import math
-import sys
 from pathlib import Path
+from types import ModuleType
 from typing import Any
 
 import numpy as np
-import tifffile
 from scipy import ndimage
 
 __all__ = [
@@ -88,6 +90,20 @@ __all__ = [
     "truth_json",
 ]
 
+
+def _load_common() -> ModuleType:
+    """``demo_run/_common.py``, loaded by its path: the generators are scripts, not a package."""
+    path = Path(__file__).resolve().parents[1] / "_common.py"
+    spec = importlib.util.spec_from_file_location("lotproof_demo_common", path)
+    if spec is None or spec.loader is None:
+        raise ImportError(f"cannot load {path}")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+_common = _load_common()
+
 #: Lot identifier; images are named ``PW-2612-01.tif`` ... ``PW-2612-06.tif``.
 LOT = "PW-2612"
 #: Number of images (one per dispersed sample) in the lot.
@@ -103,7 +119,7 @@ FINES_RICH_IMAGE = 4
 #: Particles smaller than this (drawn diameter, um) are fines.
 FINES_BELOW_UM = 10.0
 #: Name of the ground-truth file, written beside the lot folder.
-TRUTH_FILE = "lot-truth.json"
+TRUTH_FILE = _common.TRUTH_FILE
 
 _SEED_BASE = 2612
 
@@ -148,31 +164,25 @@ PARAMETERS: dict[str, Any] = {
 
 def image_name(index: int) -> str:
     """File name of image ``index`` (1-based): ``PW-2612-01.tif``."""
-    return f"{LOT}-{index:02d}.tif"
-
-
-def _gaussian_weights(sigma_px: float) -> np.ndarray:
-    # Scalar math.exp, so no vectorised transcendental function enters the pixels.
-    radius = math.ceil(PARAMETERS["gaussian_truncate_sigmas"] * sigma_px)
-    raw = [math.exp(-0.5 * (k / sigma_px) ** 2) for k in range(-radius, radius + 1)]
-    total = math.fsum(raw)
-    return np.array([w / total for w in raw], dtype=np.float64)
+    return _common.image_name(LOT, index)
 
 
 def _gaussian(image: np.ndarray, sigma_px: float) -> np.ndarray:
-    weights = _gaussian_weights(sigma_px)
-    mode = PARAMETERS["boundary_mode"]
-    out = ndimage.correlate1d(image, weights, axis=0, mode=mode)
-    return ndimage.correlate1d(out, weights, axis=1, mode=mode)
+    p = PARAMETERS
+    return _common.gaussian(image, sigma_px, p["gaussian_truncate_sigmas"], p["boundary_mode"])
 
 
 def _background(rng: np.random.Generator) -> np.ndarray:
     """Dark background with a smooth variation of standard deviation ``background_sigma``."""
-    sigma_px = PARAMETERS["background_correlation_px"]
-    weights = _gaussian_weights(sigma_px)
-    # filtered unit white noise has variance (sum of w^2)^2 for a separable kernel
-    scale = PARAMETERS["background_sigma"] / math.fsum(float(w) * float(w) for w in weights)
-    return PARAMETERS["background_level"] + _gaussian(rng.standard_normal(SHAPE), sigma_px) * scale
+    p = PARAMETERS
+    return p["background_level"] + _common.smooth_noise(
+        rng,
+        SHAPE,
+        p["background_correlation_px"],
+        p["background_sigma"],
+        p["gaussian_truncate_sigmas"],
+        p["boundary_mode"],
+    )
 
 
 def _lognormal(rng: np.random.Generator, median: float, sigma: float, bounds: list[float]) -> float:
@@ -339,7 +349,7 @@ def _render(index: int) -> tuple[np.ndarray, dict[str, Any], np.ndarray]:
     rows, cols = SHAPE
     # One stream per image, drawn in a fixed order: particles, satellites, fines,
     # background, noise.
-    rng = np.random.Generator(np.random.PCG64([_SEED_BASE, index]))
+    rng = _common.stream(_SEED_BASE, index)
     circles = _place_grains(rng, index)
     background = _background(rng)
 
@@ -370,7 +380,7 @@ def _render(index: int) -> tuple[np.ndarray, dict[str, Any], np.ndarray]:
 
     signal = _gaussian(scene, p["blur_sigma_px"])
     signal += p["noise_sigma"] * rng.standard_normal(SHAPE)
-    image = np.clip(np.rint(signal), 0.0, 255.0).astype(np.uint8)
+    image = _common.quantize(signal, np.uint8)
 
     # clusters: the 8-connected regions of the true mask
     clusters, _ = ndimage.label(mask, structure=np.ones((3, 3), dtype=bool))
@@ -443,22 +453,16 @@ def render(index: int) -> tuple[np.ndarray, dict[str, Any]]:
 
 
 def _write_tiff(path: Path, image: np.ndarray, index: int) -> None:
-    tifffile.imwrite(
+    _common.write_plane(
         path,
         image,
-        photometric="minisblack",
-        compression="zlib",
-        compressionargs={"level": 9},
-        predictor=True,
-        resolution=(RESOLUTION_PX_PER_CM, RESOLUTION_PX_PER_CM),
-        resolutionunit="CENTIMETER",
+        level=9,
+        resolution_px_per_cm=RESOLUTION_PX_PER_CM,
         description=(
             f"lotproof demo lot {LOT}, sample {index:02d}: "
             "synthetic powder image made by demo_run/powder/generate.py, not a micrograph"
         ),
         software="lotproof demo_run/powder/generate.py",
-        datetime=False,
-        metadata=None,
     )
 
 
@@ -497,19 +501,17 @@ def generate(out_dir: str | Path) -> dict[str, Any]:
 
 def truth_json(truth: dict[str, Any]) -> str:
     """The text of ``lot-truth.json``: sorted keys, ASCII, one trailing newline."""
-    return json.dumps(truth, indent=1, sort_keys=True, ensure_ascii=True) + "\n"
+    return _common.truth_json(truth)
 
 
 def main(argv: list[str] | None = None) -> int:
     """Command line: ``python demo_run/powder/generate.py [OUT_DIR]``; returns the exit code."""
-    args = sys.argv[1:] if argv is None else argv
-    if len(args) > 1 or (args and args[0].startswith("-")):
-        print("usage: python demo_run/powder/generate.py [OUT_DIR]", file=sys.stderr)
-        return 2
-    out = Path(args[0]) if args else Path(__file__).resolve().parent / LOT
-    truth = generate(out)
-    (out.resolve().parent / TRUTH_FILE).write_text(truth_json(truth), encoding="utf-8")
-    return 0
+    return _common.run_cli(
+        argv,
+        script="demo_run/powder/generate.py",
+        default_out=Path(__file__).resolve().parent / LOT,
+        generate=generate,
+    )
 
 
 if __name__ == "__main__":
