@@ -196,3 +196,46 @@ def test_store_argument(case: tuple[Path, Path], tmp_path: Path) -> None:
     store = DiskStore(tmp_path / "store")
     assert make_preview(recipe, image, store=store).sidecar["steps"]["computed"] == 4
     assert make_preview(recipe, image, store=store).sidecar["steps"]["computed"] == 0
+
+
+def _png_chunks(png: bytes) -> list[bytes]:
+    """The chunk types of a PNG file, in order (PNG specification, section 5.3)."""
+    assert png[:8] == b"\x89PNG\r\n\x1a\n"
+    types, at = [], 8
+    while at < len(png):
+        length = int.from_bytes(png[at : at + 4], "big")
+        types.append(png[at + 4 : at + 8])
+        at += 12 + length
+    return types
+
+
+def test_the_users_matplotlib_settings_do_not_reach_the_sheet(case: tuple[Path, Path]) -> None:
+    import matplotlib
+
+    recipe, image = case
+    plain = make_preview(recipe, image).png
+    mine = {
+        "font.size": 30,
+        "font.family": "serif",
+        "figure.facecolor": "red",
+        "image.interpolation": "bilinear",
+        "text.parse_math": True,
+        "lines.linewidth": 7.0,
+    }
+    with matplotlib.rc_context(mine):
+        assert make_preview(recipe, image).png == plain
+    # nothing in the file but the picture: no text chunk naming the software or a date
+    assert set(_png_chunks(plain)) == {b"IHDR", b"pHYs", b"IDAT", b"IEND"}
+
+
+def test_a_file_name_with_dollar_signs_is_drawn_as_text(
+    case: tuple[Path, Path], tmp_path: Path
+) -> None:
+    recipe, image = case
+    # matplotlib would read '$...$' as mathematics, and '\frac{' there is an error
+    odd = image.with_name("cost $\\frac{$ <b>&amp;.tif")
+    odd.write_bytes(image.read_bytes())
+    sheet = write_preview(recipe, odd, tmp_path / "odd.png")
+    assert sheet.sidecar["image"] == odd.name
+    with Image.open(tmp_path / "odd.png") as im:
+        assert im.size == (sheet.sidecar["sheet"]["width"], sheet.sidecar["sheet"]["height"])

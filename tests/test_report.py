@@ -339,6 +339,97 @@ def test_the_committed_example_run_without_ledger_or_figures_still_reports() -> 
     assert b"no preview" in html and b"not recorded" in html
 
 
+#: markup a user can put in a recipe's summary, a lot folder's name or an image file's name
+MARKUP = ("<script>alert(1)</script>", '"><img src=x onerror=alert(1)>', "&amp;")
+#: every element and attribute the report's templates write; anything else came from the data
+WRITTEN_TAGS = {
+    "html", "head", "meta", "title", "style", "body", "header", "h1", "h2", "h3", "p", "dl",
+    "dt", "dd", "code", "span", "section", "div", "strong", "br", "table", "thead", "tbody",
+    "tr", "th", "td", "figure", "img", "figcaption", "ul", "li", "footer",
+}  # fmt: skip
+WRITTEN_ATTRIBUTES = {
+    "lang", "charset", "name", "content", "class", "id", "colspan", "src", "alt",
+    "data-verdict", "data-limit", "data-value", "data-image", "data-value-of", "data-step",
+}  # fmt: skip
+_VOID = {"meta", "br", "img"}
+
+
+class _Elements(HTMLParser):
+    """Every element with its attributes and its whole text (its children's included)."""
+
+    def __init__(self) -> None:
+        super().__init__(convert_charrefs=True)
+        self.elements: list[tuple[str, dict[str, str], list[str]]] = []
+        self._open: list[list[str]] = []
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        text: list[str] = []
+        self.elements.append((tag, {k: v or "" for k, v in attrs}, text))
+        if tag not in _VOID:
+            self._open.append(text)
+
+    def handle_endtag(self, tag: str) -> None:
+        if tag not in _VOID:
+            self._open.pop()
+
+    def handle_data(self, data: str) -> None:
+        for text in self._open:
+            text.append(data)
+
+    def find(self, tag: str, **attrs: str) -> list[tuple[dict[str, str], str]]:
+        return [
+            (a, "".join(text))
+            for t, a, text in self.elements
+            if t == tag and all(a.get(k.replace("_", "-")) == v for k, v in attrs.items())
+        ]
+
+
+def test_markup_in_a_summary_a_lot_name_and_file_names_is_printed_as_text(
+    tmp_path: Path,
+) -> None:
+    summary = "Bright spots " + " ".join(MARKUP)
+    # a file name may hold anything but '/' and NUL on Linux
+    lot = tmp_path / 'lot "><img src=x onerror=alert(1)> <i>&amp;'
+    lot.mkdir()
+    names = ["a<b>&c.tif", '"><img src=x onerror=alert(1)>.tif', "&amp;<br>.tif"]
+    for n, name in enumerate(names, start=1):
+        tifffile.imwrite(lot / name, _image(n))
+    recipe = tmp_path / "<script>alert(1)<" / "recipe.yaml"
+    recipe.parent.mkdir()
+    recipe.write_text(
+        RECIPE.replace("summary: Bright spots on a dark field", f"summary: '{summary}'"),
+        encoding="utf-8",
+    )
+    run = run_lot(recipe, lot, tmp_path / "runs").run_dir
+    html = build_report(run)
+    page = _Elements()
+    page.feed(html.decode("utf-8"))
+    page.close()
+    # nothing but what the templates write: no element or attribute came from the data
+    assert {tag for tag, _, _ in page.elements} <= WRITTEN_TAGS
+    assert {name for _, attrs, _ in page.elements for name in attrs} <= WRITTEN_ATTRIBUTES
+    assert len(page.find("style")) == 1 and not page.find("script")
+    assert all(a["src"].startswith("data:image/") for a, _ in page.find("img"))
+    assert b"<script" not in html and b"<img src=x" not in html and b"<b>" not in html
+    # and every text reads back exactly as it was written
+    assert [text for _, text in page.find("p", **{"class": "summary"})] == [summary]
+    assert [text for _, text in page.find("h1")] == [f"Lot {lot.name} \u00b7 spot-report r3"]
+    assert f"{lot.name} ({lot})" in [text for _, text in page.find("dd")]
+    assert f"{recipe}" in [text for _, text in page.find("code")]
+    rows = {a["data-image"]: text for a, text in page.find("tr") if "data-image" in a}
+    assert set(rows) == set(names)
+    strong = [text for _, text in page.find("strong")]
+    alts = {a["alt"] for a, _ in page.find("img")}
+    files = [text for _, text in page.find("td")]
+    for name in names:
+        assert name in strong
+        assert rows[name].startswith(name)
+        assert {f"{name}: image", f"{name}: detected objects outlined"} <= alts
+        assert name in files  # the input files table
+    # the only pictures are the builder's own: two previews an image and one size plot
+    assert sum(1 for tag, _, _ in page.elements if tag == "img") == 2 * len(names) + 1
+
+
 def test_display_numbers() -> None:
     # source: common practice, no source (six significant digits, integers in full)
     assert _num(0.13101577758789062) == "0.131016"

@@ -15,6 +15,12 @@ Under each tile: the step's name, its kind and the parameters the recipe sets
 ``.json``) listing every tile with its box on the sheet, so a test or a script
 can find a tile without looking at pixels.
 
+The sheet is a matplotlib figure (Agg, matplotlib's own default style, never the
+user's ``matplotlibrc``) whose tiles are axes laid out in a grid; pictures are
+placed pixel for pixel (``figimage``, no resampling) and the sidecar's boxes are
+read back from that layout. The PNG carries no software version or date, so the
+same recipe, image and library versions give the same bytes.
+
 Nothing here writes into a run folder; the sheet is a working file for the author.
 """
 
@@ -25,9 +31,16 @@ import json
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+import numpy.typing as npt
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
+from matplotlib.image import FigureImage
+from matplotlib.patches import Rectangle
+from matplotlib.text import Text
+from matplotlib.transforms import Affine2D, Bbox, Transform
 
 from lotproof.runner.errors import EXIT_INVALID, InputError, LotproofError
 from lotproof.runner.evaluate.cache import Store
@@ -42,7 +55,11 @@ from lotproof.runner.evaluate.pictures import (
 from lotproof.runner.files import write_file
 from lotproof.runner.recipe.load import load_recipe
 from lotproof.runner.recipe.model import Recipe
+from lotproof.runner.show.figures import PNG_METADATA, default_style
 from lotproof.steps import REGISTRY, Area, Length, Table
+
+if TYPE_CHECKING:
+    from matplotlib.axes import Axes
 
 __all__ = [
     "SIDECAR_FORMAT",
@@ -72,12 +89,36 @@ _BACKGROUND = (250, 250, 248)
 _EMPTY = (214, 214, 210)
 _INK = (27, 27, 27)
 _MUTED = (96, 96, 96)
+#: dots per inch of the figure: 72, so a point is a pixel of the PNG
+_DPI = 72
+#: the sheet's fonts: size in pixels and weight (matplotlib's default sans-serif)
+_FONTS = {
+    "title": (17, "bold"),
+    "name": (13, "bold"),
+    "text": (12, "normal"),
+    "small": (11, "normal"),
+}
+#: an RGB picture of a tile
+Picture = npt.NDArray[np.uint8]
 
 
-class PreviewError(LotproofError, ValueError):
+# mypy run over the repository cannot follow the lotproof.runner mapping and sees an Any
+class PreviewError(LotproofError, ValueError):  # type: ignore[misc, unused-ignore]
     """The preview cannot be made as asked (unknown step, bad output name): exit 2."""
 
     exit_code = EXIT_INVALID
+
+
+@dataclass
+class _Tile:
+    """A tile to draw: its sidecar entry (given its boxes when drawn) and what it shows."""
+
+    entry: dict[str, Any]
+    picture: Picture | None
+    #: lines beside the picture: the values, then what the data is
+    side: list[str]
+    #: 'key: value' texts under the picture
+    params: list[str]
 
 
 @dataclass
@@ -259,115 +300,196 @@ def _picture(
 # ---------------------------------------------------------------- drawing the sheet
 
 
-def _fonts() -> dict[str, Any]:
-    from matplotlib import get_data_path
-    from PIL import ImageFont
-
-    folder = Path(get_data_path()) / "fonts" / "ttf"
-    return {
-        "title": ImageFont.truetype(str(folder / "DejaVuSans-Bold.ttf"), 17),
-        "name": ImageFont.truetype(str(folder / "DejaVuSans-Bold.ttf"), 13),
-        "text": ImageFont.truetype(str(folder / "DejaVuSans.ttf"), 12),
-        "small": ImageFont.truetype(str(folder / "DejaVuSans.ttf"), 11),
-    }
+def _hex(rgb: tuple[int, int, int]) -> str:
+    return "#%02x%02x%02x" % rgb
 
 
-def _clip(text: str, font: Any, width: int) -> str:
-    if font.getlength(text) <= width:
-        return text
-    while text and font.getlength(text + "\u2026") > width:
-        text = text[:-1]
-    return text + "\u2026"
+class _Writer:
+    """Text on the sheet, placed and measured in the PNG's pixels (font sizes in pixels too)."""
+
+    def __init__(self, fig: Figure) -> None:
+        # measures text as the sheet draws it; never drawn itself (not added to the figure)
+        self.probe = Text(parse_math=False)
+        self.probe.set_figure(fig)
+
+    def width(self, text: str, font: str) -> float:
+        size, weight = _FONTS[font]
+        self.probe.set_text(text)
+        self.probe.set_fontsize(size * 72 / _DPI)
+        self.probe.set_fontweight(weight)
+        return self.probe.get_window_extent().width
+
+    def clip(self, text: str, font: str, width: float) -> str:
+        """``text``, cut and ended with '…' where it is wider than ``width`` pixels."""
+        if self.width(text, font) <= width:
+            return text
+        while text and self.width(text + "\u2026", font) > width:
+            text = text[:-1]
+        return text + "\u2026"
+
+    def wrap(self, parts: list[str], font: str, width: float, lines: int) -> list[str]:
+        """Join ``parts`` with ', ' into at most ``lines`` lines of ``width`` pixels."""
+        out: list[str] = []
+        current = ""
+        for part in parts:
+            candidate = f"{current}, {part}" if current else part
+            if self.width(candidate, font) <= width or not current:
+                current = candidate
+            else:
+                out.append(current + ",")
+                current = part
+        if current:
+            out.append(current)
+        if len(out) > lines:
+            out = out[: lines - 1] + [self.clip(" ".join(out[lines - 1 :]), font, width)]
+        return [self.clip(line, font, width) for line in out]
+
+    def put(
+        self,
+        where: Axes | Figure,
+        at: Transform,
+        x: float,
+        y: float,
+        text: str,
+        font: str,
+        colour: tuple[int, int, int],
+    ) -> None:
+        """``text`` with its top left corner at (x, y) pixels of ``at``; never read as mathtext."""
+        size, weight = _FONTS[font]
+        where.text(
+            x,
+            y,
+            text,
+            transform=at,
+            fontsize=size * 72 / _DPI,
+            fontweight=weight,
+            color=_hex(colour),
+            ha="left",
+            va="top",
+            parse_math=False,
+            clip_on=False,
+        )
 
 
-def _wrap(parts: list[str], font: Any, width: int, lines: int) -> list[str]:
-    """Join ``parts`` with ', ' into at most ``lines`` lines of ``width`` pixels."""
-    out: list[str] = []
-    current = ""
-    for part in parts:
-        candidate = f"{current}, {part}" if current else part
-        if font.getlength(candidate) <= width or not current:
-            current = candidate
-        else:
-            out.append(current + ",")
-            current = part
-    if current:
-        out.append(current)
-    if len(out) > lines:
-        out = out[: lines - 1] + [_clip(" ".join(out[lines - 1 :]), font, width)]
-    return [_clip(line, font, width) for line in out]
+def _top_left(width: float, height: float, parent: Transform) -> Transform:
+    """Pixels of a ``width`` x ``height`` area from its top left corner, y downwards, onto ``parent``."""
+    return Affine2D().scale(1 / width, -1 / height).translate(0, 1) + parent
 
 
-def _draw(header: list[str], tiles: list[dict[str, Any]]) -> tuple[bytes, tuple[int, int]]:
-    from PIL import Image, ImageDraw
+def _png_box(bbox: Bbox, sheet_height: int) -> list[int]:
+    """A box in display pixels (y upwards) as [left, top, right, bottom] pixels of the PNG."""
+    return [
+        round(bbox.x0),
+        round(sheet_height - bbox.y1),
+        round(bbox.x1),
+        round(sheet_height - bbox.y0),
+    ]
 
-    fonts = _fonts()
+
+def _draw(header: list[str], tiles: list[_Tile]) -> tuple[bytes, tuple[int, int]]:
+    """The sheet as PNG bytes and its size; every tile's ``box`` and ``picture`` filled in.
+
+    Each tile is an axes of the figure (no frame, no axis) in a grid; its text and
+    frame are drawn in it, its picture is placed unresampled with ``figimage``. The
+    boxes of the sidecar are read back from that layout, in the PNG's pixels.
+    """
     rows = max(1, math.ceil(len(tiles) / COLUMNS))
     width = _PAD + COLUMNS * (_CELL_W + _PAD)
     height = _HEADER + rows * (_CELL_H + _PAD) + _PAD
-    sheet = Image.new("RGB", (width, height), _BACKGROUND)
-    draw = ImageDraw.Draw(sheet)
-    draw.text((_PAD, 12), header[0], font=fonts["title"], fill=_INK)
-    for i, line in enumerate(header[1:3]):
-        draw.text(
-            (_PAD, 36 + i * _SMALL_LINE),
-            _clip(line, fonts["small"], width - 2 * _PAD),
-            font=fonts["small"],
-            fill=_MUTED,
-        )
-    for index, tile in enumerate(tiles):
-        row, col = divmod(index, COLUMNS)
-        x0 = _PAD + col * (_CELL_W + _PAD)
-        y0 = _HEADER + row * (_CELL_H + _PAD)
-        tile["box"] = [x0, y0, x0 + _CELL_W, y0 + _CELL_H]
-        picture = tile.pop("_picture")
-        draw.rectangle([x0, y0, x0 + TILE_SIDE - 1, y0 + TILE_SIDE - 1], fill=_EMPTY)
-        if picture is not None:
-            h, w = picture.shape[:2]
-            px, py = x0 + (TILE_SIDE - w) // 2, y0 + (TILE_SIDE - h) // 2
-            sheet.paste(Image.fromarray(picture), (px, py))
-            tile["picture"] = [px, py, px + w, py + h]
-        else:
-            draw.text(
-                (x0 + 12, y0 + TILE_SIDE // 2 - 8),
-                "no picture: " + tile["data"],
-                font=fonts["text"],
-                fill=_MUTED,
+    with default_style():
+        fig = Figure(figsize=(width / _DPI, height / _DPI), dpi=_DPI, facecolor=_hex(_BACKGROUND))
+        FigureCanvasAgg(fig)
+        # every picture drawn on its own, pixel for pixel, never merged into one image
+        fig.suppressComposite = True
+        writer = _Writer(fig)
+        sheet = _top_left(width, height, fig.transFigure)
+        title = writer.clip(header[0], "title", width - 2 * _PAD)
+        writer.put(fig, sheet, _PAD, 12, title, "title", _INK)
+        for i, line in enumerate(header[1:3]):
+            text = writer.clip(line, "small", width - 2 * _PAD)
+            writer.put(fig, sheet, _PAD, 36 + i * _SMALL_LINE, text, "small", _MUTED)
+        placed: list[tuple[_Tile, Axes, FigureImage | None]] = []
+        for index, tile in enumerate(tiles):
+            row, col = divmod(index, COLUMNS)
+            x0 = _PAD + col * (_CELL_W + _PAD)
+            y0 = _HEADER + row * (_CELL_H + _PAD)
+            cell = fig.add_axes(
+                (x0 / width, 1 - (y0 + _CELL_H) / height, _CELL_W / width, _CELL_H / height),
+                frameon=False,
             )
-            tile["picture"] = None
-        draw.rectangle([x0 - 1, y0 - 1, x0 + TILE_SIDE, y0 + TILE_SIDE], outline=_MUTED)
-        # beside the picture: what the data is, and the step's values
-        side_x = x0 + TILE_SIDE + _PAD
-        max_side_lines = (_CELL_H - 4) // _SMALL_LINE
-        side = tile.pop("_side")
-        if len(side) > max_side_lines:
-            side = side[: max_side_lines - 1] + [
-                f"\u2026 and {len(side) - max_side_lines + 1} more"
-            ]
-        for i, line in enumerate(side):
-            draw.text(
-                (side_x, y0 + i * _SMALL_LINE),
-                _clip(line, fonts["small"], _SIDE_W),
-                font=fonts["small"],
-                fill=_INK,
+            cell.set_axis_off()
+            placed.append((tile, cell, _draw_tile(fig, cell, writer, tile)))
+        buffer = io.BytesIO()
+        fig.savefig(buffer, format="png", dpi=_DPI, metadata=PNG_METADATA)
+        for tile, cell, image in placed:
+            tile.entry["box"] = _png_box(cell.get_window_extent(), height)
+            if image is None:
+                tile.entry["picture"] = None
+                continue
+            # where the picture is drawn, pixel for pixel; the extent counts pixel centres
+            left, right, bottom, top = image.get_extent()
+            tile.entry["picture"] = _png_box(
+                Bbox.from_extents(left + 0.5, bottom + 0.5, right + 0.5, top + 0.5), height
             )
-        # under the picture: name, kind and parameters
-        caption_y = y0 + TILE_SIDE + 6
-        title = f"{tile['name']}  \u00b7  {tile['kind']}"
-        draw.text(
-            (x0, caption_y),
-            _clip(title, fonts["name"], TILE_SIDE + _SIDE_W),
-            font=fonts["name"],
-            fill=_INK,
-        )
-        params = tile.pop("_params") or ["defaults only"]
-        for i, line in enumerate(
-            _wrap(params, fonts["text"], TILE_SIDE + _SIDE_W, _CAPTION_LINES - 1)
-        ):
-            draw.text((x0, caption_y + (i + 1) * _LINE), line, font=fonts["text"], fill=_MUTED)
-    buffer = io.BytesIO()
-    sheet.save(buffer, format="PNG", optimize=False)
     return buffer.getvalue(), (width, height)
+
+
+def _draw_tile(fig: Figure, cell: Axes, writer: _Writer, tile: _Tile) -> FigureImage | None:
+    """One tile in its axes: framed picture, text beside and under it; the picture's artist."""
+    at = _top_left(_CELL_W, _CELL_H, cell.transAxes)
+    # the frame is one pixel wide, just outside the picture's box
+    cell.add_patch(
+        Rectangle(
+            (-0.5, -0.5),
+            TILE_SIDE + 1,
+            TILE_SIDE + 1,
+            transform=at,
+            facecolor=_hex(_EMPTY),
+            edgecolor=_hex(_MUTED),
+            linewidth=72 / _DPI,
+            antialiased=False,
+            snap=False,  # the edges lie on pixel centres already
+            clip_on=False,
+        )
+    )
+    image = None
+    if tile.picture is not None:
+        h, w = tile.picture.shape[:2]
+        corner = cell.get_window_extent()
+        # figimage counts from the sheet's lower left corner
+        image = fig.figimage(
+            tile.picture,
+            xo=round(corner.x0) + (TILE_SIDE - w) // 2,
+            yo=round(corner.y1) - (TILE_SIDE - h) // 2 - h,
+            origin="upper",
+            interpolation="nearest",
+            zorder=2,
+        )
+    else:
+        text = "no picture: " + tile.entry["data"]
+        writer.put(cell, at, 12, TILE_SIDE // 2 - 8, text, "text", _MUTED)
+    # beside the picture: what the data is, and the step's values
+    side_x = TILE_SIDE + _PAD
+    max_side_lines = (_CELL_H - 4) // _SMALL_LINE
+    side = tile.side
+    if len(side) > max_side_lines:
+        side = side[: max_side_lines - 1] + [f"\u2026 and {len(side) - max_side_lines + 1} more"]
+    for i, line in enumerate(side):
+        writer.put(
+            cell, at, side_x, i * _SMALL_LINE, writer.clip(line, "small", _SIDE_W), "small", _INK
+        )
+    # under the picture: name, kind and parameters
+    caption_y = TILE_SIDE + 6
+    title = f"{tile.entry['name']}  \u00b7  {tile.entry['kind']}"
+    writer.put(
+        cell, at, 0, caption_y, writer.clip(title, "name", TILE_SIDE + _SIDE_W), "name", _INK
+    )
+    lines = writer.wrap(
+        tile.params or ["defaults only"], "text", TILE_SIDE + _SIDE_W, _CAPTION_LINES - 1
+    )
+    for i, line in enumerate(lines):
+        writer.put(cell, at, 0, caption_y + (i + 1) * _LINE, line, "text", _MUTED)
+    return image
 
 
 # ---------------------------------------------------------------- the sheet
@@ -420,27 +542,22 @@ def make_preview(
         for name, path in sample.files.items()
     }
     first_image = next(iter(inputs.values()))
-    tiles: list[dict[str, Any]] = []
+    tiles: list[_Tile] = []
     for name, data in inputs.items():
-        tiles.append(
-            {
-                "name": name,
-                "role": "input",
-                "kind": "input",
-                "data": "image",
-                "params": {"glob": recipe.inputs[name]},
-                "_params": [
-                    f"file: {Path(sample.files[name]).name}",
-                    f"glob: {recipe.inputs[name]}",
-                ],
-                "_side": _data_lines(data, "image"),
-                "_picture": _picture(data, "image", None),
-            }
-        )
+        entry: dict[str, Any] = {
+            "name": name,
+            "role": "input",
+            "kind": "input",
+            "data": "image",
+            "params": {"glob": recipe.inputs[name]},
+        }
+        params = [f"file: {Path(sample.files[name]).name}", f"glob: {recipe.inputs[name]}"]
+        picture = _picture(data, "image", None)
+        tiles.append(_Tile(entry, picture, _data_lines(data, "image"), params))
     for name in chosen:
         step = recipe.steps[name]
         kind = recipe.kinds.get(name, "image")
-        data = result.kept.get(name)
+        out = result.kept.get(name)
         source_name = step.to[0]
         source = inputs.get(source_name, result.kept.get(source_name))
         # in the order the step kind declares them: a cached result keeps no order of its own
@@ -452,10 +569,10 @@ def make_preview(
         side = [f"  {v} = {_short(x)}{'' if u == '-' else ' ' + u}" for v, (x, u) in values.items()]
         # the values first: they are what limits read; then what the data is
         side = (["values:"] + side if side else []) + (
-            _data_lines(data, kind) if data is not None else [kind]
+            _data_lines(out, kind) if out is not None else [kind]
         )
         param_texts, params_json = _param_lines(recipe, name, result.spacing)
-        tile = {
+        entry = {
             "name": name,
             "role": "step",
             "kind": step.kind,
@@ -463,15 +580,11 @@ def make_preview(
             "to": list(step.to),
             "params": params_json,
             "values": {v: {"value": _json_number(x), "unit": u} for v, (x, u) in values.items()},
-            "_params": param_texts,
-            "_side": side,
-            "_picture": _picture(
-                data, kind, first_image, source, recipe.kinds.get(source_name, "")
-            ),
         }
-        if isinstance(data, Table):
-            tile["rows"] = data.n_rows
-        tiles.append(tile)
+        if isinstance(out, Table):
+            entry["rows"] = out.n_rows
+        picture = _picture(out, kind, first_image, source, recipe.kinds.get(source_name, ""))
+        tiles.append(_Tile(entry, picture, side, param_texts))
     spacing = result.spacing or ()
     header = [
         f"{recipe.name} r{recipe.revision}  \u00b7  {sample.id}",
@@ -483,6 +596,7 @@ def make_preview(
         else f"steps shown: {', '.join(chosen)}",
     ]
     png, size = _draw(header, tiles)
+    entries = [tile.entry for tile in tiles]
     counts = {"computed": 0, "reused": 0}
     for record in result.steps:
         counts["computed" if record.cache == "computed" else "reused"] += 1
@@ -492,11 +606,11 @@ def make_preview(
         "image": sample.id,
         "pixel_size_um": list(spacing),
         "sheet": {"width": size[0], "height": size[1], "columns": COLUMNS, "tile_side": TILE_SIDE},
-        "tiles": tiles,
+        "tiles": entries,
         "not_run": list(recipe.unused),
         "steps": counts,
     }
-    return PreviewSheet(png, sidecar, result, tiles)
+    return PreviewSheet(png, sidecar, result, entries)
 
 
 def write_preview(
