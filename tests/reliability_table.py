@@ -1,11 +1,13 @@
-"""Print the README's "Reliability" section from the test suite itself.
+"""Write docs/reliability.md from the test suite itself.
 
-Usage: ``python tests/reliability_table.py`` (from the repository root). It lists
-``tests/bad_inputs/`` and collects the tests of the bad-recipe, bad-image, fuzz,
-fault and security files (pytest's collection, nothing is run), so every number
-in the section is a count of test cases. ``tests/test_reliability_table.py``
-fails when the README and this output differ: after adding or removing such a
-test, run this script and paste its output over the section.
+Usage: ``python tests/reliability_table.py`` (from the repository root) prints the
+document; ``python tests/reliability_table.py --write`` writes it to
+``docs/reliability.md``. It lists ``tests/bad_inputs/`` and collects the tests of
+the bad-recipe, bad-image, fuzz, fault and security files (pytest's collection,
+nothing is run), so every number in the table is a count of test cases.
+``tests/test_reliability_table.py`` fails when ``docs/reliability.md`` and this
+output differ: after adding or removing such a test, run this script with
+``--write``.
 
 Every collected fault and security test must belong to a row below; a new test
 function that does not is an error here, so that it is classified on purpose.
@@ -26,6 +28,8 @@ import pytest
 TESTS = Path(__file__).resolve().parent
 ROOT = TESTS.parent
 BAD = TESTS / "bad_inputs"
+#: the generated document, relative to the repository root
+DOCUMENT = Path("docs") / "reliability.md"
 FILES = (
     "test_bad_recipes.py",
     "test_bad_images.py",
@@ -258,13 +262,13 @@ def _fuzz(items: list[_Item]) -> list[str]:
 
 
 def table(items: list[_Item]) -> str:
-    """The README section, from ``## Reliability`` to its last line."""
+    """The whole of ``docs/reliability.md``."""
     lines = [
-        "## Reliability",
+        "# Reliability",
         "",
         "What the test suite feeds lotproof on purpose, and what must come out. Every number is a",
-        "count of test cases: `python tests/reliability_table.py` prints this section, and",
-        "`tests/test_reliability_table.py` fails when it and the tests disagree.",
+        "count of test cases. This page is generated: `python tests/reliability_table.py --write`",
+        "writes it, and `tests/test_reliability_table.py` fails when it and the tests disagree.",
         "",
         "| class | cases | outcome |",
         "|---|---|---|",
@@ -293,12 +297,12 @@ def table(items: list[_Item]) -> str:
     return "\n".join(lines) + "\n"
 
 
-def readme_section(text: str) -> str:
-    """The ``## Reliability`` section of the README text (up to the next ``## `` heading)."""
-    start = text.index("## Reliability\n")
-    end = text.find("\n## ", start + 1)
-    return text[start : end + 1 if end != -1 else len(text)]
-
-
 if __name__ == "__main__":
-    sys.stdout.write(table(collect()))
+    text = table(collect())
+    if sys.argv[1:] == ["--write"]:
+        (ROOT / DOCUMENT).write_text(text, encoding="utf-8")
+        print(f"wrote {DOCUMENT}")
+    elif sys.argv[1:]:
+        raise SystemExit("usage: python tests/reliability_table.py [--write]")
+    else:
+        sys.stdout.write(text)

@@ -1,4 +1,4 @@
-"""The README's "Reliability" section is the output of tests/reliability_table.py."""
+"""docs/reliability.md is the output of tests/reliability_table.py."""
 
 from __future__ import annotations
 
@@ -7,14 +7,12 @@ import subprocess
 import sys
 from pathlib import Path
 
-from reliability_table import (
-    readme_section,  # tests/ is on sys.path under pytest's rootdir
-)
+from reliability_table import DOCUMENT  # tests/ is on sys.path under pytest's rootdir
 
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def test_the_readme_table_matches_the_test_suite() -> None:
+def test_the_reliability_page_matches_the_test_suite() -> None:
     # run in its own process: collecting tests inside a running session would re-import them
     env = {k: v for k, v in os.environ.items() if k != "LOTPROOF_FUZZ_EXAMPLES"}
     done = subprocess.run(
@@ -27,13 +25,12 @@ def test_the_readme_table_matches_the_test_suite() -> None:
     )
     assert done.returncode == 0, done.stderr.decode()
     generated = done.stdout.decode("utf-8")
-    written = readme_section((ROOT / "README.md").read_text(encoding="utf-8"))
-    assert written == generated + "\n", (
-        "README.md's Reliability section is stale; run `python tests/reliability_table.py` and "
-        "paste its output over the section"
+    written = (ROOT / DOCUMENT).read_text(encoding="utf-8")
+    assert written == generated, (
+        f"{DOCUMENT} is stale; run `python tests/reliability_table.py --write`"
     )
 
 
-def test_the_section_sits_before_the_cautions() -> None:
+def test_the_readme_links_to_the_reliability_page() -> None:
     text = (ROOT / "README.md").read_text(encoding="utf-8")
-    assert text.index("## Reliability\n") < text.index("## Cautions\n")
+    assert f"]({DOCUMENT.as_posix()})" in text

@@ -1,7 +1,10 @@
-"""The recipe's JSON Schema (draft-07) and plain-text descriptions of step parameters.
+"""The recipe's JSON Schema (draft-07) and plain-text descriptions of step kinds.
 
-Both are generated from the pydantic models, never kept by hand: the schema for
-editors (``lotproof schema``), the parameter tables for ``lotproof steps``.
+All are generated from the pydantic models and the step registry, never kept by
+hand: the schema for editors (``lotproof schema``), the parameter tables for
+``lotproof steps``, and the table of step kinds in the README
+(:func:`step_kinds_markdown`; ``tests/test_readme.py`` fails when the README's
+copy differs).
 """
 
 from __future__ import annotations
@@ -15,9 +18,17 @@ from pydantic import BaseModel, ConfigDict, Field, create_model
 from pydantic.fields import FieldInfo
 
 from lotproof.runner.recipe.model import NAME_PATTERN, RecipeModel
-from lotproof.steps import REGISTRY, Area, Length, StepKind
+from lotproof.steps import REGISTRY, SAME, Area, Length, StepKind
 
-__all__ = ["SCHEMA_FILE", "describe_type", "param_rows", "recipe_json_schema", "schema_text"]
+__all__ = [
+    "SCHEMA_FILE",
+    "describe_type",
+    "param_rows",
+    "recipe_json_schema",
+    "schema_text",
+    "step_kinds_markdown",
+    "takes_text",
+]
 
 #: where the repository keeps the generated schema, relative to the project root
 SCHEMA_FILE = "recipes/lotproof-recipe.schema.json"
@@ -115,3 +126,31 @@ def param_rows(kind: StepKind) -> list[tuple[str, str, str, str]]:
     for name, info in kind.params.model_fields.items():
         rows.append((name, describe_type(info.annotation), _default(info), info.description or ""))
     return rows
+
+
+def takes_text(kind: StepKind) -> str:
+    """What ``kind`` takes, one entry per input: ``image or mask``; ``mask, mask, ...``."""
+    text = ", ".join(" or ".join(sorted(accepted)) for accepted in kind.takes)
+    return text + (", ..." if kind.variadic else "")
+
+
+def _cell(text: str) -> str:
+    return text.replace("|", "\\|").replace("\n", " ")
+
+
+def step_kinds_markdown() -> str:
+    """The table of every registered step kind, as Markdown, in name order.
+
+    Columns: the kind, what it takes and gives, the array dimensions it works
+    on, and its one-line summary (the first line of its docstring). The README
+    holds a copy between ``<!-- step-kinds:start -->`` and
+    ``<!-- step-kinds:end -->``.
+    """
+    lines = ["| kind | takes | gives | on | does |", "|---|---|---|---|---|"]
+    for name in sorted(REGISTRY):
+        kind = REGISTRY[name]
+        gives = "same as input" if kind.gives == SAME else kind.gives
+        dims = ", ".join(f"{d}-D" for d in sorted(kind.ndims))
+        cells = [f"`{name}`", takes_text(kind), gives, dims, kind.summary]
+        lines.append("| " + " | ".join(_cell(c) for c in cells) + " |")
+    return "\n".join(lines) + "\n"
