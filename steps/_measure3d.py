@@ -261,7 +261,7 @@ def object_table_3d(
         sphericity = np.where(
             surface > 0, np.pi ** (1.0 / 3.0) * (6.0 * volume) ** (2.0 / 3.0) / surface, np.nan
         )
-    columns = {
+    columns: dict[str, np.ndarray] = {
         "label": present.astype(np.int32),
         "volume": volume,
         "esd": esd,

@@ -838,7 +838,8 @@ def _ragged_arange(starts: np.ndarray, counts: np.ndarray) -> np.ndarray:
     """``concatenate([arange(s, s + n) for s, n in zip(starts, counts)])`` without a loop."""
     total = int(counts.sum())
     offsets = np.arange(total, dtype=np.int64) - np.repeat(_segment_starts(counts)[:-1], counts)
-    return np.repeat(starts, counts) + offsets
+    aranged: np.ndarray = np.repeat(starts, counts) + offsets
+    return aranged
 
 
 def _envelope(group: np.ndarray, t: np.ndarray, s: np.ndarray, side: int) -> np.ndarray:
@@ -934,8 +935,10 @@ def _bound_on_lines(
     num = c_value[p] * rise + (c_value[q] - c_value[p]) * (line_level - c_level[p])
     den = 2 * rise
     if side > 0:
-        return -((-num) // den)  # ceil(num / den)
-    return num // den  # floor(num / den)
+        ceiling: np.ndarray = -((-num) // den)  # ceil(num / den)
+        return ceiling
+    floor: np.ndarray = num // den  # floor(num / den)
+    return floor
 
 
 def _max_sq_distance_ragged(py: np.ndarray, px: np.ndarray, starts: np.ndarray) -> np.ndarray:

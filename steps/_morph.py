@@ -140,7 +140,8 @@ def _working_copy(image: np.ndarray) -> np.ndarray:
         return image.view(np.uint8)
     if image.dtype.kind == "f":
         # -0.0 + 0.0 is +0.0; every other finite value is unchanged
-        return image + image.dtype.type(0)
+        positive_zero: np.ndarray = image + image.dtype.type(0)
+        return positive_zero
     return image
 
 
@@ -177,7 +178,8 @@ def _reference(image: np.ndarray, offsets: np.ndarray, operation: str) -> np.nda
 
 def _offsets(footprint: np.ndarray) -> np.ndarray:
     centre = np.array([n // 2 for n in footprint.shape])
-    return np.argwhere(footprint) - centre
+    offsets: np.ndarray = np.argwhere(footprint) - centre
+    return offsets
 
 
 def erode_reference(image: np.ndarray, footprint: np.ndarray) -> np.ndarray:

@@ -92,4 +92,5 @@ def structure(connectivity: int | None, ndim: int) -> np.ndarray:
     ``connectivity`` is checked (and ``None`` resolved) by :func:`resolve_connectivity`.
     """
     resolved = resolve_connectivity(connectivity, ndim)
-    return ndimage.generate_binary_structure(ndim, _RANK[resolved])
+    element: np.ndarray = ndimage.generate_binary_structure(ndim, _RANK[resolved])
+    return element

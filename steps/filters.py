@@ -48,7 +48,7 @@ GAUSSIAN_TRUNCATE = 4.0
 class GrayParams(StepParams):
     """Parameters of ``gray``."""
 
-    weights: Literal[GRAY_WEIGHTS] = Field(
+    weights: Literal[GRAY_WEIGHTS] = Field(  # type: ignore[valid-type]
         "bt601",
         description=(
             "luma weights for red, green, blue: bt601 = 0.299, 0.587, 0.114 (ITU-R BT.601); "
@@ -125,7 +125,7 @@ def gray(params: GrayParams, image: np.ndarray, *, spacing: tuple[float, ...]) -
 class SmoothParams(StepParams):
     """Parameters of ``smooth``."""
 
-    method: Literal[SMOOTH_METHODS] = Field(
+    method: Literal[SMOOTH_METHODS] = Field(  # type: ignore[valid-type]
         description="gaussian (needs sigma) or median (needs radius)",
     )
     sigma: Length | None = Field(
@@ -204,13 +204,17 @@ def smooth(params: SmoothParams, image: np.ndarray, *, spacing: tuple[float, ...
         raise ValueError(f"smooth needs a numeric gray image, got dtype {image.dtype}")
     if params.method == "gaussian":
         assert params.sigma is not None
-        return ndimage.gaussian_filter(
+        smoothed: np.ndarray = ndimage.gaussian_filter(
             image.astype(np.float64),
             sigma=params.sigma.px,
             order=0,
             mode=SMOOTH_MODE,
             truncate=GAUSSIAN_TRUNCATE,
         )
+        return smoothed
     assert params.radius is not None
     footprint = disk(params.radius.px) if image.ndim == 2 else ball(params.radius.px)
-    return ndimage.median_filter(image, footprint=footprint, mode=SMOOTH_MODE, origin=0)
+    median: np.ndarray = ndimage.median_filter(
+        image, footprint=footprint, mode=SMOOTH_MODE, origin=0
+    )
+    return median

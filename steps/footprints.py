@@ -199,7 +199,7 @@ def _clip(halves: Sequence[int], limit: Sequence[int] | None) -> list[int]:
     return [min(h, int(lim)) for h, lim in zip(halves, limit, strict=False)]
 
 
-def _grid(halves: Sequence[int]) -> list[np.ndarray]:
+def _grid(halves: Sequence[int]) -> tuple[np.ndarray, ...]:
     return np.ogrid[tuple(slice(-h, h + 1) for h in halves)]
 
 
@@ -338,7 +338,8 @@ def diamond(radius: float, *, limit: Sequence[int] | None = None) -> np.ndarray:
     _check_positive(radius, "a radius")
     h = math.floor(radius)
     y, x = _grid(_clip((h, h), limit))
-    return (np.abs(y) + np.abs(x)) <= h
+    inside: np.ndarray = (np.abs(y) + np.abs(x)) <= h
+    return inside
 
 
 def _box(sides: Sequence[float], limit: Sequence[int] | None) -> np.ndarray:
@@ -498,7 +499,7 @@ def build_footprint(
     if ndim not in (2, 3):
         raise ValueError(f"footprints are for 2-D or 3-D data (got {ndim} axes)")
     limit = None if shape is None else [max(int(n) - 1, 0) for n in shape]
-    if limit is not None and len(limit) != ndim:
+    if shape is not None and len(shape) != ndim:
         raise ValueError(f"shape {tuple(shape)} does not have {ndim} axes")
 
     def sizes(field: str) -> tuple[float, ...]:

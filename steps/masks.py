@@ -164,7 +164,8 @@ def fill_holes(
         objects = DEFAULT_CONNECTIVITY[mask.ndim]
     background, count = _label(~mask, BACKGROUND_CONNECTIVITY[objects])
     reaches_frame = _frame_labels(background, count)
-    return mask | ((background > 0) & ~reaches_frame[background])
+    filled: np.ndarray = mask | ((background > 0) & ~reaches_frame[background])
+    return filled
 
 
 # --------------------------------------------------------------------------- remove-small
@@ -271,7 +272,8 @@ def remove_small(
     sizes = np.bincount(labels.reshape(-1))
     stays = sizes >= minimum
     stays[0] = False
-    return stays[labels]
+    kept: np.ndarray = stays[labels]
+    return kept
 
 
 # --------------------------------------------------------------------------- clear-border
@@ -318,7 +320,8 @@ def clear_border(
     """
     _check_mask(mask, "clear-border")
     labels, count = _label(mask, params.connectivity)
-    return mask & ~_frame_labels(labels, count)[labels]
+    cleared: np.ndarray = mask & ~_frame_labels(labels, count)[labels]
+    return cleared
 
 
 # --------------------------------------------------------------------------- combine
@@ -327,7 +330,7 @@ def clear_border(
 class CombineParams(StepParams):
     """Parameters of ``combine``."""
 
-    method: Literal[COMBINE_METHODS] = Field(
+    method: Literal[COMBINE_METHODS] = Field(  # type: ignore[valid-type]
         description=(
             "and: in every mask; or: in any mask; xor: in an odd number of the masks "
             "(two masks: in exactly one); minus: in the first mask and in none of the others"
@@ -373,10 +376,13 @@ def combine(params: CombineParams, *masks: np.ndarray, spacing: tuple[float, ...
         listed = ", ".join(f"mask {i}: {s}" for i, s in enumerate(shapes, start=1))
         raise ValueError(f"combine needs masks of one shape, got {listed}")
     first, rest = masks[0], masks[1:]
+    combined: np.ndarray
     if params.method == "and":
-        return np.logical_and.reduce(masks)
-    if params.method == "or":
-        return np.logical_or.reduce(masks)
-    if params.method == "xor":
-        return np.logical_xor.reduce(masks)
-    return first & ~np.logical_or.reduce(rest)
+        combined = np.logical_and.reduce(masks)
+    elif params.method == "or":
+        combined = np.logical_or.reduce(masks)
+    elif params.method == "xor":
+        combined = np.logical_xor.reduce(masks)
+    else:
+        combined = first & ~np.logical_or.reduce(rest)
+    return combined

@@ -96,7 +96,8 @@ def _difference(a: np.ndarray, b: np.ndarray) -> np.ndarray:
             )
         return wide.astype(a.dtype)
     # unsigned: a >= b so nothing wraps; float: finite inputs
-    return a - b
+    difference: np.ndarray = a - b
+    return difference
 
 
 def _open(data: np.ndarray, footprint: np.ndarray) -> np.ndarray:
@@ -333,7 +334,8 @@ def outline(params: OutlineParams, data: np.ndarray, *, spacing: tuple[float, ..
     low = _morph.erode(data, footprint) if mode in ("full", "inner") else data
     high = _morph.dilate(data, footprint) if mode in ("full", "outer") else data
     if data.dtype == np.bool_:
-        return high & ~low
+        edge: np.ndarray = high & ~low
+        return edge
     return _difference(high, low)
 
 

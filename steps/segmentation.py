@@ -323,6 +323,7 @@ def split_touching(
         return np.zeros(mask.shape, dtype=np.int32)
 
     neighbours = structure(connectivity, mask.ndim)
+    regions: np.ndarray
     regions, _ = ndi.label(mask, structure=neighbours)
     if mask.all():
         # no background: the distance is unbounded, and the one region is one object

@@ -24,7 +24,7 @@ with values beyond 2**53 (not all exact in float64), are refused.
 
 from __future__ import annotations
 
-from typing import Literal
+from typing import Literal, cast
 
 import numpy as np
 from pydantic import Field, model_validator
@@ -67,13 +67,13 @@ _BINCOUNT_CHUNK = 2**18
 class ThresholdParams(StepParams):
     """Parameters of ``threshold``."""
 
-    method: Literal[THRESHOLD_METHODS] = Field(
+    method: Literal[THRESHOLD_METHODS] = Field(  # type: ignore[valid-type]
         description=(
             "fixed (needs level), otsu, li, yen, triangle, isodata (automatic, from the "
             "histogram), or local (needs block_size; level = mean over the block - offset)"
         ),
     )
-    features: Literal[THRESHOLD_FEATURES] = Field(
+    features: Literal[THRESHOLD_FEATURES] = Field(  # type: ignore[valid-type]
         "bright",
         description="bright: foreground = image > level; dark: foreground = image <= level",
     )
@@ -274,7 +274,11 @@ def _compare(image: np.ndarray, level: float | np.ndarray, features: str) -> np.
         if image.dtype.kind in "ui" and image.dtype.itemsize <= 4
         else image.astype(np.float64, copy=False)
     )
-    bright = np.greater(data, np.float64(level) if np.isscalar(level) else level)
+    # a scalar level is a float (see the annotation); np.isscalar's type guard says only
+    # "some numpy scalar", so the type checker is told
+    bright: np.ndarray = np.greater(
+        data, np.float64(cast(float, level)) if np.isscalar(level) else level
+    )
     return bright if features == "bright" else ~bright
 
 

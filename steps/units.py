@@ -37,7 +37,7 @@ from __future__ import annotations
 import math
 import re
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, ClassVar, TypeVar
 
 from pydantic import GetCoreSchemaHandler, GetJsonSchemaHandler
 from pydantic.json_schema import JsonSchemaValue
@@ -180,8 +180,21 @@ class _Quantity:
     value: float
     unit: str
 
+    #: an example for the JSON schema's description; each kind of quantity sets its own
+    _example: ClassVar[str]
+
     def __str__(self) -> str:
         return f"{_format_number(self.value)} {self.unit}"
+
+    @classmethod
+    def _table(cls) -> dict[str, tuple[str, float | None]]:
+        """The unit spellings of this kind of quantity (each kind defines it)."""
+        raise NotImplementedError
+
+    @classmethod
+    def _parse(cls, raw: Any) -> _Quantity:
+        """Read ``raw`` as this kind of quantity (each kind defines it)."""
+        raise NotImplementedError
 
     @property
     def px(self) -> float:
@@ -305,7 +318,10 @@ class Volume(_Quantity):
         return parse_volume(raw)
 
 
-def _parse(raw: Any, table: dict[str, tuple[str, float | None]], cls: type, hint: str) -> Any:
+_Q = TypeVar("_Q", bound=_Quantity)
+
+
+def _parse(raw: Any, table: dict[str, tuple[str, float | None]], cls: type[_Q], hint: str) -> _Q:
     kind = cls.__name__.lower()
     if isinstance(raw, bool) or raw is None:
         raise PydanticCustomError(

@@ -103,7 +103,7 @@ def run_recipe(
     store = open_store(cache, no_cache)
     jobs = jobs or usable_cores()
     err_console = stderr()
-    documents = []
+    documents: list[Any] = []
     codes: list[int] = []
     try:
         with open_executor(

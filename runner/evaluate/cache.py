@@ -335,7 +335,7 @@ class DiskStore:
             handle.write(header + b"\n")
             for array in arrays:
                 if array.size:
-                    handle.write(memoryview(array).cast("B"))
+                    handle.write(array.data.cast("B"))
 
         # Not durable: the rename makes the entry appear whole to other processes, and an
         # entry that a power cut left with lost bytes fails its checksum on read and is

@@ -8,6 +8,7 @@ results, another Python.
 from __future__ import annotations
 
 import getpass
+import importlib
 import platform
 import socket
 import sys
@@ -54,19 +55,19 @@ def cpu_info() -> dict[str, Any]:
                     break
     except OSError:
         pass
-    features: list[str] = []
-    try:
-        from numpy._core._multiarray_umath import __cpu_features__  # type: ignore[attr-defined]
+    return {"model": model, "machine": platform.machine(), "numpy_simd": _numpy_simd()}
 
-        features = sorted(name for name, present in __cpu_features__.items() if present)
-    except ImportError:  # older numpy keeps it elsewhere
+
+def _numpy_simd() -> list[str]:
+    """The SIMD extensions numpy found on this CPU, from its compiled core (which has no stubs)."""
+    # older numpy keeps the table in numpy.core
+    for module in ("numpy._core._multiarray_umath", "numpy.core._multiarray_umath"):
         try:
-            from numpy.core._multiarray_umath import __cpu_features__  # type: ignore[attr-defined,no-redef]
-
-            features = sorted(name for name, present in __cpu_features__.items() if present)
-        except ImportError:
-            features = []
-    return {"model": model, "machine": platform.machine(), "numpy_simd": features}
+            table = importlib.import_module(module).__cpu_features__
+        except (ImportError, AttributeError):
+            continue
+        return sorted(name for name, present in table.items() if present)
+    return []
 
 
 def _user() -> str | None:

@@ -74,7 +74,7 @@ def hash_array(array: np.ndarray) -> str:
     digest = hashlib.sha256()
     digest.update(canonical_json({"dtype": array.dtype.str, "shape": list(array.shape)}))
     digest.update(b"\x00")
-    digest.update(memoryview(array).cast("B") if array.size else b"")
+    digest.update(array.data.cast("B") if array.size else b"")
     return digest.hexdigest()
 
 

@@ -45,7 +45,7 @@ import warnings
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 
@@ -253,7 +253,7 @@ def _tiff_calibration(tif: Any, ndim_spatial: int) -> Calibration:
     if tif.is_ome and tif.ome_metadata:
         ome = _ome_calibration(tif.ome_metadata)
         if ome is not None:
-            sizes = ome.pixel_size_um or ()
+            sizes: tuple[float, ...] = ome.pixel_size_um or ()
             if len(sizes) == 3 and ndim_spatial == 2:
                 sizes = sizes[1:]
             if len(sizes) == ndim_spatial:
@@ -287,7 +287,7 @@ def _tiff_calibration(tif: Any, ndim_spatial: int) -> Calibration:
         return Calibration(None, "resolution tags without a unit")
     size_x = FILE_LENGTH_UNITS[unit] / rx
     size_y = FILE_LENGTH_UNITS[unit] / ry
-    sizes: tuple[float, ...] = (size_y, size_x)
+    sizes = (size_y, size_x)
     if ndim_spatial == 3:
         spacing = described.get("spacing")
         if spacing is None:
@@ -403,11 +403,13 @@ def _decode_tiff(raw: bytes, shown: str) -> tuple[np.ndarray, bool, Calibration]
                 data = _series_data(tif, shown)
                 if handler.messages:
                     raise InputError(_damaged(handler.messages[0], len(pages), len(raw), shown))
-                photometric = getattr(pages[0].photometric, "name", str(pages[0].photometric))
-                samples = pages[0].samplesperpixel
+                # a file's first page is always read in full (a TiffPage, never a TiffFrame)
+                first = cast("tifffile.TiffPage", pages[0])
+                photometric = getattr(first.photometric, "name", str(first.photometric))
+                samples = first.samplesperpixel
                 is_color = photometric in ("RGB", "YCBCR", "PALETTE") or samples in (3, 4)
                 if photometric == "PALETTE":
-                    data = pages[0].asrgb()
+                    data = first.asrgb()
                 spatial = data.ndim - (1 if is_color else 0)
                 calibration = _tiff_calibration(tif, spatial)
     except InputError:
@@ -427,9 +429,10 @@ def _decode_pillow(raw: bytes, shown: str, what: str) -> tuple[np.ndarray, bool,
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("error")
-            with Image.open(io.BytesIO(raw)) as im:
-                _check_pixels((im.height, im.width), 1, shown)
-                im.load()
+            with Image.open(io.BytesIO(raw)) as opened:
+                _check_pixels((opened.height, opened.width), 1, shown)
+                opened.load()
+                im: Image.Image = opened
                 mode = im.mode
                 dpi = im.info.get("dpi")
                 if mode == "P":

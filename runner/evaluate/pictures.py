@@ -56,7 +56,8 @@ def to_display(image: np.ndarray, max_side: int = PREVIEW_SIDE) -> np.ndarray:
     low, high = np.percentile(small, [0.5, 99.5])
     if high <= low:
         return np.zeros(small.shape, np.uint8)
-    return (np.clip((small - low) / (high - low), 0, 1) * 255).round().astype(np.uint8)
+    stretched: np.ndarray = np.clip((small - low) / (high - low), 0, 1)
+    return (stretched * 255).round().astype(np.uint8)
 
 
 def preview_arrays(
@@ -101,7 +102,7 @@ def mask_display(mask: np.ndarray, max_side: int = PREVIEW_SIDE) -> np.ndarray:
     mask = _middle_slice(np.asarray(mask, bool))
     f = _shrink_factor(mask.shape, max_side)
     h, w = (mask.shape[0] // f) * f, (mask.shape[1] // f) * f
-    fraction = mask[:h, :w].reshape(h // f, f, w // f, f).mean(axis=(1, 3))
+    fraction: np.ndarray = mask[:h, :w].reshape(h // f, f, w // f, f).mean(axis=(1, 3))
     return (fraction * 255).round().astype(np.uint8)
 
 
@@ -139,7 +140,8 @@ def labels_display(labels: np.ndarray, max_side: int = PREVIEW_SIDE) -> np.ndarr
     f = _shrink_factor(labels.shape, max_side)
     small = labels[::f, ::f][: labels.shape[0] // f or 1, : labels.shape[1] // f or 1]
     small = np.clip(small, 0, None).astype(np.int64)
-    return label_colours(int(small.max(initial=0)))[small]
+    coloured: np.ndarray = label_colours(int(small.max(initial=0)))[small]
+    return coloured
 
 
 def outline_overlay(
@@ -149,7 +151,8 @@ def outline_overlay(
     objects = np.asarray(objects)
     if objects.dtype == bool:
         objects = objects.astype(np.int32)
-    return preview_arrays(image, objects, max_side)["overlay"]
+    overlay: np.ndarray = preview_arrays(image, objects, max_side)["overlay"]
+    return overlay
 
 
 def png_bytes(array: np.ndarray) -> bytes:

@@ -227,16 +227,17 @@ def _compare(
         new = {rec.step: rec.checksum for rec in r.steps}
         for step in order:
             old = recorded_steps.get((r.id, step))
-            if old is None or new.get(step) is None:
+            checksum = new.get(step)
+            if old is None or checksum is None:
                 continue
             report.compared += 1
-            if old != new[step]:
+            if old != checksum:
                 report.differences.append(
                     Difference(
                         r.id,
                         f"step {step} result checksum",
                         old[:16] + "...",
-                        new[step][:16] + "...",
+                        checksum[:16] + "...",
                     )
                 )
     rerun_folder = RunFolder(summary.run_dir)
@@ -248,11 +249,11 @@ def _compare(
                 Difference("(lot)", f"{name} columns", ",".join(old_header), ",".join(new_header))
             )
             continue
-        for i, (old, new) in enumerate(zip(old_rows, new_rows, strict=False)):
-            for column, a, b in zip(old_header, old, new, strict=True):
+        for i, (old_row, new_row) in enumerate(zip(old_rows, new_rows, strict=False)):
+            for column, a, b in zip(old_header, old_row, new_row, strict=True):
                 report.compared += 1
                 if a != b:
-                    image = old[0] if old else "?"
+                    image = old_row[0] if old_row else "?"
                     where = column if name == IMAGES_FILE else f"object row {i + 1}: {column}"
                     report.differences.append(Difference(image, where, a, b))
         if len(old_rows) != len(new_rows):

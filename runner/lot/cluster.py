@@ -293,7 +293,8 @@ class DaskExecutor:
             return out
 
         try:
-            return self.client.run_on_scheduler(count, keys=keys)
+            counts: dict[str, int] = self.client.run_on_scheduler(count, keys=keys)
+            return counts
         except Exception:  # a scheduler that refuses to run code: no note, the same results
             return {}
 

@@ -269,9 +269,9 @@ def _compare_top(a: Recipe, b: Recipe, diff: RecipeDiff) -> None:
         if va != vb:
             diff.top.append(Change(key, va, vb))
     for name in sorted(set(a.inputs) | set(b.inputs)):
-        va, vb = a.inputs.get(name), b.inputs.get(name)
-        if va != vb:
-            diff.top.append(Change(f"inputs.{name}", va, vb))
+        input_a, input_b = a.inputs.get(name), b.inputs.get(name)
+        if input_a != input_b:
+            diff.top.append(Change(f"inputs.{name}", input_a, input_b))
 
 
 def diff_recipes(a: str, b: str) -> RecipeDiff:

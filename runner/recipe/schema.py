@@ -36,7 +36,7 @@ SCHEMA_FILE = "recipes/lotproof-recipe.schema.json"
 
 def _step_model(kind: StepKind) -> type[BaseModel]:
     fields: dict[str, Any] = {
-        "apply": (Literal[kind.name], Field(description=f"{kind.name}: {kind.summary}")),  # type: ignore[valid-type]
+        "apply": (Literal[kind.name], Field(description=f"{kind.name}: {kind.summary}")),
         "to": (
             Union[str, list[str]],  # noqa: UP007
             Field(description="the input or earlier step(s) this step is applied to"),
@@ -44,7 +44,7 @@ def _step_model(kind: StepKind) -> type[BaseModel]:
         "keep": (bool, Field(False, description="save this step's result in the run folder")),
     }
     model_name = "step_" + kind.name.replace("-", "_")
-    return create_model(model_name, __base__=kind.params, **fields)  # type: ignore[call-overload,no-any-return]
+    return create_model(model_name, __base__=kind.params, **fields)
 
 
 def recipe_json_schema() -> dict[str, Any]:

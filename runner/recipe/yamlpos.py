@@ -18,7 +18,7 @@ import bisect
 import math
 import re
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, cast
 
 import yaml
 from yaml.nodes import MappingNode, Node, ScalarNode, SequenceNode
@@ -69,27 +69,33 @@ class LoadedYaml:
         return Position(1, 1)
 
 
+def _start(event: yaml.Event) -> yaml.Mark | None:
+    """Where ``event`` starts: the pure-Python parser of SafeLoader makes only ``yaml.Mark``."""
+    return cast("yaml.Mark | None", event.start_mark)
+
+
 class _StrictLoader(yaml.SafeLoader):
     """SafeLoader with YAML 1.2 core-schema implicit scalars and no aliases."""
 
-    def compose_node(self, parent: Node | None, index: Any) -> Node:  # type: ignore[override]
-        event = self.peek_event()
+    def compose_node(self, parent: Node | None, index: Any) -> Node | None:
+        # types-PyYAML leaves Parser.peek_event unannotated; it returns the next event
+        event: yaml.Event = self.peek_event()  # type: ignore[no-untyped-call]
         if isinstance(event, yaml.AliasEvent):
             raise yaml.MarkedYAMLError(
                 problem="aliases (*name) are not allowed in recipes; write the value out",
-                problem_mark=event.start_mark,
+                problem_mark=_start(event),
             )
         if getattr(event, "anchor", None) is not None:
             raise yaml.MarkedYAMLError(
                 problem="anchors (&name) are not allowed in recipes",
-                problem_mark=event.start_mark,
+                problem_mark=_start(event),
             )
         self._depth = getattr(self, "_depth", 0) + 1
         try:
             if self._depth > MAX_DEPTH:
                 raise yaml.MarkedYAMLError(
                     problem=f"nesting deeper than {MAX_DEPTH} levels is not allowed",
-                    problem_mark=event.start_mark,
+                    problem_mark=_start(event),
                 )
             node = super().compose_node(parent, index)
         finally:

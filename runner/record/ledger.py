@@ -30,6 +30,7 @@ Event types a run writes, in this order (fields beside ``seq``, ``type``, ``prev
 from __future__ import annotations
 
 import hashlib
+import io
 import json
 import math
 import os
@@ -156,7 +157,7 @@ class LedgerWriter:
         self._seal: str | None = None
         try:
             # unbuffered: a failed write fails here, not later in close()
-            self._file = open(self.path, "xb", buffering=0)  # noqa: SIM115 - closed by close()
+            self._file: io.FileIO | None = open(self.path, "xb", buffering=0)  # noqa: SIM115 - closed by close()
         except FileExistsError:
             raise LedgerWriteError(
                 f"{self.path}: exists already; a ledger is never rewritten"

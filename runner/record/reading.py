@@ -13,6 +13,7 @@ The reader judges nothing: whether the files are the ones the ledger sealed is
 
 from __future__ import annotations
 
+import builtins
 import csv
 import io
 import json
@@ -119,7 +120,8 @@ class RunFolder:
             except (OSError, UnicodeDecodeError, csv.Error) as err:
                 raise self._error(f"{path}: cannot be read as CSV ({err})") from None
 
-    def recipe(self) -> bytes:
+    # from here on in the class body, ``bytes`` names the method above; the type is builtins.bytes
+    def recipe(self) -> builtins.bytes:
         """The exact bytes of the recipe as run (``recipe.yaml``)."""
         data = self.bytes(RECIPE_FILE)
         assert data is not None  # required
@@ -134,7 +136,7 @@ class RunFolder:
             raise self._error(f"{self.path / VERDICTS_FILE}: not a verdicts document")
         return document
 
-    def figure(self, image_id: str, name: str) -> bytes | None:
+    def figure(self, image_id: str, name: str) -> builtins.bytes | None:
         """The PNG bytes of an image's figure (``thumbnail`` or ``overlay``), or None."""
         relative = figure_path(image_id, name)
         return self.bytes(relative, required=False) if self.exists(relative) else None

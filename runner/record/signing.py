@@ -11,12 +11,18 @@ import base64
 import os
 import re
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING
 
 from lotproof.runner.errors import EXIT_INVALID, LotproofError
 from lotproof.runner.files import read_file, write_file
 from lotproof.runner.record.layout import SIGNATURE_FILE, inside_run_folder, is_within
 from lotproof.runner.record.ledger import LedgerWriteError
+
+if TYPE_CHECKING:
+    from cryptography.hazmat.primitives.asymmetric.ed25519 import (
+        Ed25519PrivateKey,
+        Ed25519PublicKey,
+    )
 
 __all__ = [
     "SigningError",
@@ -39,7 +45,7 @@ class SigningError(LotproofError, ValueError):
     exit_code = EXIT_INVALID
 
 
-def load_public_key(path: Path) -> Any:
+def load_public_key(path: Path) -> Ed25519PublicKey:
     """The Ed25519 public key in the PEM file ``path``; :class:`SigningError` otherwise."""
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
     from cryptography.hazmat.primitives.serialization import load_pem_public_key
@@ -55,7 +61,7 @@ def load_public_key(path: Path) -> Any:
     return key
 
 
-def load_private_key(path: Path) -> Any:
+def load_private_key(path: Path) -> Ed25519PrivateKey:
     """The Ed25519 private key in the unencrypted PEM file ``path``; :class:`SigningError` otherwise."""
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
     from cryptography.hazmat.primitives.serialization import load_pem_private_key

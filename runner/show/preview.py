@@ -102,8 +102,7 @@ _FONTS = {
 Picture = npt.NDArray[np.uint8]
 
 
-# mypy run over the repository cannot follow the lotproof.runner mapping and sees an Any
-class PreviewError(LotproofError, ValueError):  # type: ignore[misc, unused-ignore]
+class PreviewError(LotproofError, ValueError):
     """The preview cannot be made as asked (unknown step, bad output name): exit 2."""
 
     exit_code = EXIT_INVALID

@@ -107,8 +107,7 @@ _PLOT_STYLE: dict[RcKeyType, Any] = {
 }
 
 
-# mypy run over the repository cannot follow the lotproof.runner mapping and sees an Any
-class ReportError(LotproofError, ValueError):  # type: ignore[misc, unused-ignore]
+class ReportError(LotproofError, ValueError):
     """A folder cannot be reported on (not a run folder, or an unreadable file); exit 2."""
 
     exit_code = EXIT_INVALID

@@ -1,0 +1,1 @@
+../../lotproof/__init__.py

@@ -1,0 +1,1 @@
+../../lotproof/__main__.py
