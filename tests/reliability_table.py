@@ -240,7 +240,7 @@ def _bad_images(items: list[_Item]) -> list[str]:
     )
     tests = [i for i in items if i.file == "test_bad_images.py"]
     if not files:
-        return ["| bad images | see issue 9, in progress | |"]
+        raise SystemExit(f"{folder}: no bad images; run its generator (make_bad_images.py)")
     return [
         f"| bad images (`tests/bad_inputs/images/`, see `tests/test_bad_images.py`) | "
         f"{len(files)} files | that image `incomplete` with "

@@ -13,6 +13,7 @@
 from __future__ import annotations
 
 import ast
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -178,3 +179,30 @@ def test_only_the_lotproof_package_is_importable_outside_the_tree(tmp_path: Path
 def test_every_runner_module_has_a_docstring(name: str) -> None:
     tree = ast.parse(MODULES[name].read_text(encoding="utf-8"))
     assert ast.get_docstring(tree), f"{MODULES[name]} says nothing of what it is for"
+
+
+def _developers_sections() -> dict[str, str]:
+    """DEVELOPERS.md's module tables, by the folder each maps ('runner', 'runner/recipe', ...)."""
+    text = (ROOT / "DEVELOPERS.md").read_text(encoding="utf-8")
+    marks = list(re.finditer(r"^(?:### `(\w+)/`|\*\*`(\w+)/`\*\*)", text, flags=re.M))
+    sections = {}
+    for mark, following in zip(marks, [*marks[1:], None], strict=True):
+        name = mark.group(1) or f"runner/{mark.group(2)}"
+        end = following.start() if following is not None else text.find("\n## ", mark.end())
+        sections[name] = text[mark.end() : end]
+    return sections
+
+
+def test_developers_md_maps_every_module() -> None:
+    # every module file of the package is named in DEVELOPERS.md's table for its folder
+    sections = _developers_sections()
+    missing = []
+    for path in MODULES.values():
+        folder = path.parent.relative_to(ROOT).as_posix()
+        if path.name == "__init__.py" and folder.count("/"):
+            continue  # a sub-package's docstring-only __init__: its heading maps it
+        table = sections.get(folder)
+        if table is None or f"`{path.name}`" not in table:
+            missing.append(path.relative_to(ROOT).as_posix())
+    assert {"lotproof", "runner", "runner/recipe", "runner/show", "steps"} <= set(sections)
+    assert missing == []

@@ -7,7 +7,6 @@ from __future__ import annotations
 
 import difflib
 from pathlib import Path
-from typing import Any
 
 import click
 from rich.table import Table as RichTable
@@ -16,7 +15,7 @@ from rich.text import Text
 from lotproof.runner.cli.console import emit_json, fail_recipe, stderr, stdout
 from lotproof.runner.errors import EXIT_INVALID, RecipeError
 from lotproof.runner.recipe.load import load_recipe
-from lotproof.runner.recipe.schema import param_rows, schema_text
+from lotproof.runner.recipe.schema import param_rows, schema_text, takes_text
 from lotproof.runner.record.limits import bound_text
 from lotproof.steps import REGISTRY
 
@@ -114,10 +113,6 @@ def steps_command(kind: str | None, as_json: bool) -> None:
         raise SystemExit(EXIT_INVALID)
     kinds = [REGISTRY[kind]] if kind else [REGISTRY[k] for k in sorted(REGISTRY)]
 
-    def takes(k: Any) -> str:
-        text = ", ".join(" or ".join(sorted(t)) for t in k.takes)
-        return text + (", ..." if k.variadic else "")
-
     if as_json:
         emit_json(
             {
@@ -150,7 +145,7 @@ def steps_command(kind: str | None, as_json: bool) -> None:
         for column in ("kind", "takes", "gives", "does"):
             table.add_column(column)
         for k in kinds:
-            table.add_row(k.name, takes(k), k.gives, k.summary)
+            table.add_row(k.name, takes_text(k), k.gives, k.summary)
         console.print(table)
         console.print("`lotproof steps KIND` shows a kind's parameters.")
         return
@@ -158,7 +153,7 @@ def steps_command(kind: str | None, as_json: bool) -> None:
     console.print(Text(f"{k.name} (version {k.version}): {k.summary}", style="bold"))
     gives = "same kind as its input" if k.gives == "same" else k.gives
     dims = ", ".join(f"{d}-D" for d in sorted(k.ndims))
-    console.print(f"takes: {takes(k)}   gives: {gives}   works on: {dims}")
+    console.print(f"takes: {takes_text(k)}   gives: {gives}   works on: {dims}")
     params = RichTable(title="parameters", title_justify="left")
     for column in ("parameter", "type", "default", "description"):
         params.add_column(column)

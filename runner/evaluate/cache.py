@@ -10,8 +10,10 @@ every array in it. The header names the key, the kind of result, each array's
 dtype, shape and byte length, named values as exact float text, and the result's
 content checksum. Nothing is pickled; arrays are read with ``numpy.frombuffer``.
 
-Writes go to a temporary file in the destination folder, are flushed to disk, and
-are renamed into place: a reader sees a whole entry or none. Two writers of the
+Writes go to a temporary file in the destination folder and are renamed into
+place (:func:`lotproof.runner.files.write_file`): a reader sees a whole entry or
+none. They are not fsync'ed: an entry that a power cut left short fails its
+checksum on read and is recomputed. Two writers of the
 same key write the same bytes, so whichever rename lands last is right. Every
 read re-computes the content checksum; an entry that does not match (a flipped
 byte, a truncated file, a missing header) is a miss, is reported once, and is

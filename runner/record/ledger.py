@@ -13,11 +13,12 @@ signed with Ed25519 (:mod:`lotproof.runner.record.signing`).
 
 Event types a run writes, in this order (fields beside ``seq``, ``type``, ``prev``):
 
-``run-start``   tool, python, libraries, platform, cpu, command, user, host, time_utc
+``run-start``   tool, python, libraries, platform, cpu, command, user, host, time_utc, lot,
+                cache, executor (and rerun_of on a rerun)
 ``recipe``      path, sha256, name, revision, git ({commit, path_in_repo, modified} or null)
 ``input``       image, input, path, size, sha256, shape, dtype, calibration
-``step``        image, step, kind, version, key, checksum, cache ("computed"|"reused"), seconds
-``image``       image, status, reason
+``step``        image, step, kind, version, to, key, checksum, cache ("computed"|"reused"), seconds
+``image``       image, status, reason, worker, notes
 ``verdict``     limit, value, unit, over, bound, verdict
 ``lot-verdict`` verdict
 ``output``      path, sha256, size (path POSIX, relative to the run folder)
