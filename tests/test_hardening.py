@@ -2,12 +2,20 @@
 
 from __future__ import annotations
 
+import json
 import subprocess
 from pathlib import Path
 
+import numpy as np
 import pytest
 
+from lotproof import run_lot
+from lotproof.runner.errors import EXIT_OK, RecipeError
 from lotproof.runner.recipe.git import git_info, git_show
+from lotproof.runner.recipe.load import parse_recipe
+from lotproof.runner.recipe.model import MAX_REVISION, MAX_STEPS
+
+from _builders import write_lot
 
 
 def _git(repo: Path, *args: str) -> None:
@@ -88,3 +96,60 @@ def test_modified_compares_the_bytes_with_the_committed_blob(tmp_path: Path) -> 
     untracked = repo / "other.yaml"
     untracked.write_bytes(b"format: lotproof/1\n")
     assert git_info(untracked)["modified"] is True  # type: ignore[index]
+
+
+# ---------------------------------------------------------------- recipe content that once crashed a run
+
+
+def _chain_recipe(count: int, revision: int = 1) -> str:
+    steps = ["  s0:\n    apply: threshold\n    to: section\n    method: otsu\n"]
+    steps += [f"  s{i}:\n    apply: invert\n    to: s{i - 1}\n" for i in range(1, count - 1)]
+    steps.append(f"  stats:\n    apply: measure\n    to: s{count - 2}\n")
+    return (
+        f"format: lotproof/1\nname: chain\nrevision: {revision}\nsummary: a chain\n"
+        'pixel_size: 1 um\ninputs:\n  section: "*.tif"\nsteps:\n' + "".join(steps)
+    )
+
+
+def test_a_revision_beyond_canonical_json_is_a_recipe_error(tmp_path: Path) -> None:
+    with pytest.raises(RecipeError) as raised:
+        parse_recipe(_chain_recipe(3, revision=99999999999999999999999).encode(), "r.yaml")
+    (problem,) = raised.value.problems
+    assert (problem.line, problem.where) == (3, "revision")
+    assert str(MAX_REVISION) in problem.what
+
+
+def test_more_steps_than_the_bound_is_a_recipe_error() -> None:
+    with pytest.raises(RecipeError) as raised:
+        parse_recipe(_chain_recipe(MAX_STEPS + 1).encode(), "r.yaml")
+    assert any(p.where == "steps" and str(MAX_STEPS) in p.what for p in raised.value.problems)
+
+
+def test_the_longest_chain_allowed_runs(tmp_path: Path) -> None:
+    # a chain of MAX_STEPS steps is evaluated to its end (it once ended in RecursionError)
+    image = np.zeros((16, 16), np.uint8)
+    image[4:9, 4:9] = 200
+    lot = write_lot(tmp_path, {"a.tif": image})
+    recipe = parse_recipe(_chain_recipe(MAX_STEPS).encode(), "chain.yaml")
+    summary = run_lot(recipe, lot, tmp_path / "runs")
+    assert summary.exit_code == EXIT_OK, summary.results[0].reason
+    # MAX_STEPS - 2 inversions: an even number, so the 25 spot pixels are the objects again
+    assert summary.results[0].values[("stats", "count")] == 1.0
+    assert summary.results[0].values[("stats", "area_fraction")] == 25 / 256
+
+
+@pytest.mark.parametrize(
+    ("pattern", "why"),
+    [
+        ("~/*.tif", "'~'"),
+        ("~root/x.tif", "'~'"),
+        ("a\x00b.tif", "control characters"),
+        ("line\nbreak.tif", "control characters"),
+        ("  ", "empty"),
+    ],
+)
+def test_globs_of_home_folders_and_control_characters_are_refused(pattern: str, why: str) -> None:
+    text = _chain_recipe(3).replace('"*.tif"', json.dumps(pattern))
+    with pytest.raises(RecipeError) as raised:
+        parse_recipe(text.encode(), "r.yaml")
+    assert any(why in p.what and p.where.startswith("inputs") for p in raised.value.problems)

@@ -16,6 +16,8 @@ from lotproof.steps import Length, StepParams
 
 __all__ = [
     "CALIBRATION_RULES",
+    "MAX_REVISION",
+    "MAX_STEPS",
     "FORMAT",
     "NAME_PATTERN",
     "OVER_CHOICES",
@@ -37,6 +39,11 @@ SLUG_PATTERN = r"^[a-z0-9][a-z0-9-]{0,63}$"
 #: (by more than 1 % relative on some axis): image-must-agree makes that image incomplete,
 #: recipe-wins uses the recipe's size and notes the disagreement
 CALIBRATION_RULES = ("image-must-agree", "recipe-wins")
+#: the largest revision: canonical JSON (RFC 8785) holds integers exactly up to 2**53 - 1
+MAX_REVISION = 2**53 - 1
+#: the most steps a recipe may have (a method has tens; the bound keeps every check and
+#: evaluation within fixed depth)
+MAX_STEPS = 400
 #: keys of a step that are not parameters of its kind
 STEP_KEYS = ("apply", "to", "keep")
 
@@ -83,7 +90,9 @@ class RecipeModel(_Strict):
         description="the method's name (lower-case letters, digits, '-'); with revision it names "
         "the method on certificates"
     )
-    revision: int = Field(ge=1, description="the method's revision, bumped on every change")
+    revision: int = Field(
+        ge=1, le=MAX_REVISION, description="the method's revision, bumped on every change"
+    )
     summary: str = Field("", description="one line on what the method measures")
     pixel_size: Length | Literal["from-image"] | None = Field(
         None,
@@ -111,7 +120,9 @@ class RecipeModel(_Strict):
     inputs: dict[Name, Annotated[str, StringConstraints(min_length=1)]] = Field(
         description="named inputs: a glob inside the lot folder, e.g. '*.tif'", min_length=1
     )
-    steps: dict[Name, dict[str, Any]] = Field(description="the named steps", min_length=1)
+    steps: dict[Name, dict[str, Any]] = Field(
+        description=f"the named steps (at most {MAX_STEPS})", min_length=1, max_length=MAX_STEPS
+    )
     limits: dict[Name, LimitModel] = Field(default_factory=dict, description="acceptance limits")
 
     @model_validator(mode="after")

@@ -49,4 +49,10 @@ def check_pattern(pattern: str) -> str | None:
         return "an input glob is relative to the lot folder; absolute paths are refused"
     if ".." in posix.parts:
         return "an input glob may not leave the lot folder ('..' is refused)"
+    if pattern.startswith("~"):
+        return "an input glob is relative to the lot folder; '~' (a home folder) is refused"
+    if any(ord(c) < 32 or c == "\x7f" for c in pattern):
+        return "an input glob may not hold control characters (NUL, newline, ...)"
+    if not pattern.strip():
+        return "an input glob may not be empty"
     return None
