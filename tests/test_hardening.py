@@ -10,10 +10,12 @@ import numpy as np
 import pytest
 
 from lotproof import run_lot
-from lotproof.runner.errors import EXIT_OK, RecipeError
+from lotproof.runner.cli.main import main
+from lotproof.runner.errors import EXIT_INVALID, EXIT_OK, RecipeError
 from lotproof.runner.recipe.git import git_info, git_show
 from lotproof.runner.recipe.load import parse_recipe
 from lotproof.runner.recipe.model import MAX_REVISION, MAX_STEPS
+from lotproof.runner.record.verify import verify_run
 
 from _builders import write_lot
 
@@ -153,3 +155,40 @@ def test_globs_of_home_folders_and_control_characters_are_refused(pattern: str, 
     with pytest.raises(RecipeError) as raised:
         parse_recipe(text.encode(), "r.yaml")
     assert any(why in p.what and p.where.startswith("inputs") for p in raised.value.problems)
+
+
+# ---------------------------------------------------------------- the record
+
+
+def test_an_empty_folder_added_to_a_run_is_an_alteration(record_copy: Path) -> None:
+    assert verify_run(record_copy).status == "intact"
+    (record_copy / "extra").mkdir()
+    report = verify_run(record_copy)
+    assert report.status == "altered"
+    assert "extra/: not recorded in the ledger (added after the run)" in report.problems
+    (record_copy / "extra" / "deeper").mkdir()
+    assert (
+        "extra/deeper/: not recorded in the ledger (added after the run)"
+        in verify_run(record_copy).problems
+    )
+
+
+@pytest.mark.parametrize("option", ["--out", "--cache"])
+@pytest.mark.parametrize("where", ["the run", "a folder in the run"])
+def test_output_or_cache_inside_a_sealed_run_is_refused(
+    record_copy: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str], option: str, where: str
+) -> None:
+    lot = record_copy.parents[1] / "lot"
+    recipe = record_copy / "recipe.yaml"
+    inside = record_copy if where == "the run" else record_copy / "figures" / "more"
+    other = {"--out": tmp_path / "runs", "--cache": tmp_path / "cache"}
+    other[option] = inside
+    argv = ["run", str(recipe), str(lot), "--out", str(other["--out"])]
+    argv += ["--cache", str(other["--cache"])]
+    with pytest.raises(SystemExit) as ended:
+        main(argv)
+    assert ended.value.code == EXIT_INVALID
+    err = capsys.readouterr().err
+    assert "lies inside the run folder" in err and "Traceback" not in err
+    assert verify_run(record_copy).status == "intact"  # nothing was written into it
+    assert not (tmp_path / "runs").exists()

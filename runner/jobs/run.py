@@ -26,7 +26,7 @@ from lotproof.runner.recipe.git import git_info
 from lotproof.runner.recipe.load import load_recipe
 from lotproof.runner.recipe.model import Recipe
 from lotproof.runner.record.folder import create_run_folder, write_previews, write_run_files
-from lotproof.runner.record.layout import LEDGER_FILE, SUMS_FILE
+from lotproof.runner.record.layout import LEDGER_FILE, SUMS_FILE, inside_run_folder
 from lotproof.runner.record.ledger import LedgerWriter, write_sha256sums
 from lotproof.runner.record.limits import FAIL, Verdicts, evaluate_limits
 from lotproof.runner.record.signing import load_private_key, write_signature
@@ -36,7 +36,8 @@ __all__ = ["RunSummary", "WritesIntoLotError", "exit_code_for", "run_lot", "usab
 
 
 class WritesIntoLotError(LotproofError, ValueError):
-    """The output or cache folder lies inside the lot: lotproof never writes into a lot (exit 2)."""
+    """The output or cache folder lies inside the lot, or inside a sealed run folder:
+    lotproof never writes into either (exit 2)."""
 
     exit_code = EXIT_INVALID
 
@@ -48,6 +49,15 @@ def _refuse_inside_lot(lot: Path, folder: Path, what: str) -> None:
         raise WritesIntoLotError(
             f"{folder}: the {what} lies inside the lot folder {lot}; lotproof never writes "
             f"into a lot (its files would become inputs of the next run); choose one outside it"
+        )
+
+
+def _refuse_inside_a_run(folder: Path, what: str) -> None:
+    run = Path(folder) if (Path(folder) / LEDGER_FILE).exists() else inside_run_folder(Path(folder))
+    if run is not None:
+        raise WritesIntoLotError(
+            f"{folder}: the {what} lies inside the run folder {run}; a run folder is sealed "
+            "and never written into; choose one outside it"
         )
 
 
@@ -208,6 +218,9 @@ def run_lot(
         _refuse_inside_lot(lot, Path(out), "output folder")
         if isinstance(store, DiskStore):
             _refuse_inside_lot(lot, store.root, "cache folder")
+    _refuse_inside_a_run(Path(out), "output folder")
+    if isinstance(store, DiskStore):
+        _refuse_inside_a_run(store.root, "cache folder")
     if samples is None:
         samples = find_samples(lot, recipe.inputs)
     if sign is not None:

@@ -16,9 +16,9 @@ from lotproof.steps import Length, StepParams
 
 __all__ = [
     "CALIBRATION_RULES",
+    "FORMAT",
     "MAX_REVISION",
     "MAX_STEPS",
-    "FORMAT",
     "NAME_PATTERN",
     "OVER_CHOICES",
     "STEP_KEYS",

@@ -248,10 +248,16 @@ def verify_run(
 
 
 def _files_under(run_dir: Path) -> list[str]:
+    """Every file of the run folder, and every folder that holds no file (``name/``).
+
+    A symbolic link to a folder is listed as a file (it is never recorded), and an
+    empty folder is listed too: anything the ledger does not record is an alteration.
+    """
     names = []
     for folder, dirs, files in os.walk(run_dir, followlinks=False):
         base = Path(folder)
-        # symbolic links to folders are listed as files: they are never recorded
         for name in files + [d for d in dirs if (base / d).is_symlink()]:
             names.append((base / name).relative_to(run_dir).as_posix())
+        if base != run_dir and not files and not any(not (base / d).is_symlink() for d in dirs):
+            names.append(base.relative_to(run_dir).as_posix() + "/")
     return names
