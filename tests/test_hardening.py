@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import json
+import os
 import subprocess
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -12,12 +14,14 @@ import pytest
 from lotproof import run_lot
 from lotproof.runner.cli.main import main
 from lotproof.runner.errors import EXIT_INVALID, EXIT_OK, RecipeError
+from lotproof.runner.evaluate.cache import DiskStore
+from lotproof.runner.evaluate.image import entry_bound
 from lotproof.runner.recipe.git import git_info, git_show
 from lotproof.runner.recipe.load import parse_recipe
 from lotproof.runner.recipe.model import MAX_REVISION, MAX_STEPS
 from lotproof.runner.record.verify import verify_run
 
-from _builders import write_lot
+from _builders import write_lot, write_recipe
 
 
 def _git(repo: Path, *args: str) -> None:
@@ -192,3 +196,162 @@ def test_output_or_cache_inside_a_sealed_run_is_refused(
     assert "lies inside the run folder" in err and "Traceback" not in err
     assert verify_run(record_copy).status == "intact"  # nothing was written into it
     assert not (tmp_path / "runs").exists()
+
+
+# ---------------------------------------------------------------- the cache
+
+_CACHED_RECIPE = """format: lotproof/1
+name: cached
+revision: 1
+summary: threshold and measure
+pixel_size: 1 um
+inputs:
+  section: "*.tif"
+steps:
+  pores:
+    apply: threshold
+    to: section
+    method: otsu
+  clean:
+    apply: open
+    to: pores
+    radius: 1 px
+  stats:
+    apply: measure
+    to: clean
+"""
+
+
+def _cached_world(tmp_path: Path) -> tuple[Path, Path, DiskStore, object]:
+    image = np.zeros((40, 40), np.uint8)
+    image[5:15, 5:15] = 200
+    image[20:32, 22:36] = 180
+    lot = write_lot(tmp_path, {"a.tif": image})
+    recipe = write_recipe(tmp_path, _CACHED_RECIPE)
+    store = DiskStore(tmp_path / "cache")
+    cold = run_lot(recipe, lot, tmp_path / "runs", store=store)
+    return lot, recipe, store, cold
+
+
+def _key(summary: object, step: str) -> str:
+    return next(s.key for s in summary.results[0].steps if s.step == step)  # type: ignore[attr-defined]
+
+
+def _records(summary: object) -> dict[str, tuple[str | None, str]]:
+    return {s.step: (s.checksum, s.cache) for s in summary.results[0].steps}  # type: ignore[attr-defined]
+
+
+@pytest.mark.parametrize("step", ["stats", "pores"])  # a reused entry, and a skipped one
+def test_a_cache_entry_whose_header_lies_never_reaches_the_record(
+    tmp_path: Path, step: str
+) -> None:
+    lot, recipe, store, cold = _cached_world(tmp_path)
+    path = store.path(_key(cold, step))
+    header, _, payload = path.read_bytes().partition(b"\n")
+    forged = json.loads(header)
+    forged["checksum"] = "0" * 64
+    path.write_bytes(json.dumps(forged, separators=(",", ":")).encode() + b"\n" + payload)
+    warm = run_lot(recipe, lot, tmp_path / "runs", store=DiskStore(tmp_path / "cache"))
+    checksum, _ = _records(warm)[step]
+    assert checksum != "0" * 64
+    assert checksum in (None, _records(cold)[step][0])
+    assert any("hash mismatch" in note and "0" * 64 in note for note in warm.results[0].notes)
+    assert "0" * 64 not in (warm.run_dir / "steps.csv").read_text()
+    step_events = [
+        line
+        for line in (warm.run_dir / "ledger.jsonl").read_text().splitlines()
+        if '"type":"step"' in line
+    ]
+    assert step_events and not any("0" * 64 in line for line in step_events)
+
+
+def test_a_cache_entry_larger_than_a_result_can_be_is_never_read(tmp_path: Path) -> None:
+    lot, recipe, store, cold = _cached_world(tmp_path)
+    path = store.path(_key(cold, "stats"))
+    with path.open("ab") as handle:  # grown by far more than the image could give
+        handle.truncate(entry_bound(40 * 40) + 1)
+    read_sizes: list[int] = []
+    real_read = DiskStore._read
+
+    def spy(self: DiskStore, key: str, where: Path, max_bytes: int | None, *, keep: bool) -> object:
+        read_sizes.append(where.stat().st_size if where.exists() else -1)
+        return real_read(self, key, where, max_bytes, keep=keep)
+
+    DiskStore._read = spy  # type: ignore[method-assign]
+    try:
+        warm = run_lot(recipe, lot, tmp_path / "runs", store=DiskStore(tmp_path / "cache"))
+    finally:
+        DiskStore._read = real_read  # type: ignore[method-assign]
+    assert read_sizes  # the entry was looked at ...
+    notes = warm.results[0].notes
+    assert any("more than a result of this image can hold" in note for note in notes)
+    assert _records(warm)["stats"] == (_records(cold)["stats"][0], "computed")
+    assert warm.exit_code == cold.exit_code  # type: ignore[attr-defined]
+
+
+@pytest.mark.parametrize("jobs", [1, 2])
+def test_a_pipe_in_place_of_a_cache_entry_is_damage_not_a_hang(tmp_path: Path, jobs: int) -> None:
+    lot, recipe, store, cold = _cached_world(tmp_path)
+    for step in ("stats", "pores"):  # reused, and skipped
+        path = store.path(_key(cold, step))
+        path.unlink()
+        os.mkfifo(path)
+    done = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "lotproof",
+            "run",
+            str(recipe),
+            str(lot),
+            "--out",
+            str(tmp_path / "runs"),
+            "--cache",
+            str(tmp_path / "cache"),
+            "-j",
+            str(jobs),
+        ],
+        capture_output=True,
+        text=True,
+        timeout=120,
+        check=False,
+    )
+    assert done.returncode == cold.exit_code, done.stderr  # type: ignore[attr-defined]
+    assert done.stderr.count("not a regular file") >= 1 and "Traceback" not in done.stderr
+
+
+def test_a_foreign_folder_is_never_taken_as_the_cache(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    image = np.zeros((20, 20), np.uint8)
+    image[3:9, 3:9] = 200
+    lot = write_lot(tmp_path, {"a.tif": image})
+    recipe = write_recipe(tmp_path, _CACHED_RECIPE)
+    foreign = tmp_path / "photos"
+    foreign.mkdir()
+    (foreign / "holiday.jpg").write_bytes(b"not ours")
+    with pytest.raises(SystemExit) as ended:
+        main(
+            ["run", str(recipe), str(lot), "--out", str(tmp_path / "runs"), "--cache", str(foreign)]
+        )
+    assert ended.value.code == EXIT_INVALID
+    err = capsys.readouterr().err
+    assert "is not a lotproof cache" in err and "holiday.jpg" in err and "Traceback" not in err
+    assert sorted(p.name for p in foreign.iterdir()) == ["holiday.jpg"]
+    assert not (tmp_path / "runs").exists()
+    # an empty folder, and a folder that is a cache, are fine
+    (tmp_path / "empty").mkdir()
+    for cache in (tmp_path / "empty", tmp_path / "empty"):
+        with pytest.raises(SystemExit) as ended:
+            main(
+                [
+                    "run",
+                    str(recipe),
+                    str(lot),
+                    "--out",
+                    str(tmp_path / "runs"),
+                    "--cache",
+                    str(cache),
+                ]
+            )
+        assert ended.value.code == EXIT_OK

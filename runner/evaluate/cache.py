@@ -25,7 +25,9 @@ See DEVELOPERS.md, "Cache format".
 from __future__ import annotations
 
 import json
+import mmap
 import os
+import stat
 import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
@@ -34,17 +36,19 @@ from typing import Any, BinaryIO, Protocol
 
 import numpy as np
 
+from lotproof.runner.errors import EXIT_INVALID, LotproofError
 from lotproof.runner.evaluate.hashing import (
     canonical_json,
     content_checksum,
     float_text,
 )
-from lotproof.runner.files import TEMP_PREFIX, write_file
+from lotproof.runner.files import TEMP_PREFIX, read_file, write_file
 from lotproof.steps import Output, Table
 
 __all__ = [
     "CACHE_FORMAT",
     "ENV_VAR",
+    "CacheFolderError",
     "CacheStats",
     "DiskStore",
     "NullStore",
@@ -58,6 +62,8 @@ ENV_VAR = "LOTPROOF_CACHE"
 _MARKER = "lotproof-cache.json"
 #: an entry header longer than this is not a header
 _MAX_HEADER = 16 * 1024 * 1024
+#: what happens to a damaged entry of a result that was not needed (its checksum only)
+_LEFT_OUT = "its checksum is left out of the record (the result was not needed)"
 
 
 def default_cache_dir() -> Path:
@@ -75,14 +81,19 @@ class Store(Protocol):
 
     location: str
 
-    def get(self, key: str) -> tuple[Any, str] | None:
-        """The result stored under ``key`` and its verified checksum, or ``None`` (a miss)."""
+    def get(self, key: str, max_bytes: int | None = None) -> tuple[Any, str] | None:
+        """The result stored under ``key`` and its verified checksum, or ``None`` (a miss).
+
+        An entry larger than ``max_bytes`` (what a result of this image can be) is
+        damaged: it is a miss, reported, and never read into memory.
+        """
 
     def put(self, key: str, result: Any) -> str:
         """Store ``result`` under ``key``; returns its content checksum."""
 
-    def checksum(self, key: str) -> str | None:
-        """The content checksum an entry declares, without loading it (``None``: no entry)."""
+    def checksum(self, key: str, max_bytes: int | None = None) -> str | None:
+        """The verified content checksum of an entry, without keeping its result in memory
+        (``None``: no entry, or a damaged one)."""
 
 
 class NullStore:
@@ -90,13 +101,13 @@ class NullStore:
 
     location = "none"
 
-    def get(self, key: str) -> tuple[Any, str] | None:
+    def get(self, key: str, max_bytes: int | None = None) -> tuple[Any, str] | None:
         return None
 
     def put(self, key: str, result: Any) -> str:
         return content_checksum(result)
 
-    def checksum(self, key: str) -> str | None:
+    def checksum(self, key: str, max_bytes: int | None = None) -> str | None:
         return None
 
 
@@ -133,6 +144,31 @@ def _encode(result: Any, arrays: list[np.ndarray]) -> dict[str, Any]:
 
 class _Corrupt(Exception):
     pass
+
+
+def _declared_bytes(spec: Any, depth: int = 0) -> int:
+    """The payload bytes a header's result spec declares (checked before anything is read)."""
+    if not isinstance(spec, dict) or depth > 4:
+        raise _Corrupt("malformed header")
+    body = {k: v for k, v in spec.items() if k != "rows"}
+    if len(body) != 1:
+        raise _Corrupt("malformed header")
+    ((kind, inner),) = body.items()
+    if kind == "array":
+        nbytes = inner.get("nbytes") if isinstance(inner, dict) else None
+        if not isinstance(nbytes, int) or isinstance(nbytes, bool) or nbytes < 0:
+            raise _Corrupt("malformed header")
+        return nbytes
+    if kind == "table" and isinstance(inner, list):
+        total = 0
+        for column in inner:
+            if not isinstance(column, list) or len(column) != 3:
+                raise _Corrupt("malformed header")
+            total += _declared_bytes(column[2], depth + 1)
+        return total
+    if kind == "output" and isinstance(inner, dict):
+        return _declared_bytes(inner.get("data"), depth + 1)
+    raise _Corrupt(f"unknown entry kind {kind!r}")
 
 
 def _decode(spec: Any, buffer: memoryview, offset: list[int]) -> Any:
@@ -175,8 +211,10 @@ def _decode(spec: Any, buffer: memoryview, offset: list[int]) -> Any:
 # ---------------------------------------------------------------- the store
 
 
-class _NotACacheFolder(OSError):
-    """The folder given as the cache holds something else; never written to."""
+class CacheFolderError(LotproofError, ValueError):
+    """The folder given as the cache holds something else (exit 2); it is never written to."""
+
+    exit_code = EXIT_INVALID
 
 
 @dataclass
@@ -201,9 +239,46 @@ class DiskStore:
         self._ready = False
         self._unwritable = False
 
+    def check_folder(self) -> None:
+        """Refuse (:class:`CacheFolderError`) a folder that is neither new, empty, nor a cache.
+
+        Called before a run starts, so a ``--cache`` pointed at another folder ends the
+        command with exit 2 before anything is written, instead of adopting the folder.
+        """
+        marker = self.root / _MARKER
+        if marker.exists():
+            self._read_marker(marker)
+            return
+        if not self.root.exists():
+            return
+        if not self.root.is_dir():
+            raise CacheFolderError(f"{self.root}: not a folder; a cache is a folder")
+        try:
+            # a writer's temporary file (another process making the marker) is no foreign file
+            found = sorted(
+                p.name for p in self.root.iterdir() if not p.name.startswith(TEMP_PREFIX)
+            )
+        except OSError as err:
+            raise CacheFolderError(f"{self.root}: cannot be read ({err.strerror})") from None
+        if found and found not in (["objects"], [_MARKER], [_MARKER, "objects"]):
+            shown = ", ".join(found[:5]) + (", ..." if len(found) > 5 else "")
+            raise CacheFolderError(
+                f"{self.root} holds other files ({shown}) and is not a lotproof cache (no "
+                f"{_MARKER}); give an empty or new folder, or an existing lotproof cache"
+            )
+
+    def _read_marker(self, marker: Path) -> None:
+        try:
+            info = json.loads(read_file(marker, max_bytes=65536))
+        except (OSError, ValueError):
+            info = {}
+        if not isinstance(info, dict) or info.get("format") != CACHE_FORMAT:
+            raise CacheFolderError(f"{self.root} is not a {CACHE_FORMAT} cache folder ({_MARKER})")
+
     def _prepare(self) -> None:
         if self._ready:
             return
+        self.check_folder()
         self.objects.mkdir(parents=True, exist_ok=True)
         marker = self.root / _MARKER
         if not marker.exists():
@@ -212,15 +287,6 @@ class DiskStore:
                 canonical_json({"format": CACHE_FORMAT, "hash": "sha256"}) + b"\n",
                 replace=True,
             )
-        else:
-            try:
-                info = json.loads(marker.read_text())
-            except (OSError, ValueError):
-                info = {}
-            if info.get("format") != CACHE_FORMAT:
-                raise _NotACacheFolder(
-                    f"{self.root} is not a {CACHE_FORMAT} cache folder ({_MARKER})"
-                )
         self._ready = True
 
     def drain_messages(self) -> list[str]:
@@ -234,10 +300,10 @@ class DiskStore:
             raise ValueError(f"not a cache key: {key!r}")
         return self.objects / key[:2] / key[2:]
 
-    def _corrupt(self, key: str, path: Path, why: str) -> None:
+    def _corrupt(self, key: str, path: Path, why: str, then: str = "recomputing") -> None:
         if key not in self._reported:
             self._reported.add(key)
-            message = f"cache entry {path}: {why}; recomputing"
+            message = f"cache entry {path}: {why}; {then}"
             self._messages.append(message)
             if self._on_corrupt is not None:
                 self._on_corrupt(message)
@@ -246,62 +312,93 @@ class DiskStore:
         except OSError:
             pass
 
-    def _read_header(self, path: Path) -> tuple[dict[str, Any], bytes] | None:
+    def _read(
+        self, key: str, path: Path, max_bytes: int | None, *, keep: bool
+    ) -> tuple[Any, str] | None:
+        """The decoded, checksum-verified result of the entry at ``path``; None when absent.
+
+        Only a regular file is opened for reading (a pipe in its place is damage, never
+        waited on); its size must be what its header declares, and at most
+        ``max_bytes``, before its payload is read. ``keep=False`` maps the file instead
+        of reading it, for a checksum that needs no result in memory.
+        """
         try:
-            with open(path, "rb") as handle:
-                raw = handle.read()
+            fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK | getattr(os, "O_CLOEXEC", 0))
         except FileNotFoundError:
             return None
-        newline = raw.find(b"\n", 0, _MAX_HEADER)
-        if newline < 0:
-            raise _Corrupt("no header")
-        try:
-            header = json.loads(raw[:newline])
-        except ValueError:
-            raise _Corrupt("unreadable header") from None
-        if not isinstance(header, dict):
-            raise _Corrupt("malformed header")
-        return header, raw[newline + 1 :]
-
-    def get(self, key: str) -> tuple[Any, str] | None:
-        path = self.path(key)
-        try:
-            found = self._read_header(path)
-            if found is None:
-                return None
-            header, payload = found
+        with os.fdopen(fd, "rb", closefd=True) as handle:
+            info = os.fstat(handle.fileno())
+            if not stat.S_ISREG(info.st_mode):
+                raise _Corrupt("not a regular file")
+            if max_bytes is not None and info.st_size > max_bytes:
+                raise _Corrupt(
+                    f"{info.st_size} bytes, more than a result of this image can hold ({max_bytes})"
+                )
+            os.set_blocking(handle.fileno(), True)
+            line = handle.readline(_MAX_HEADER)
+            if not line.endswith(b"\n"):
+                raise _Corrupt("no header")
+            try:
+                header = json.loads(line)
+            except ValueError:
+                raise _Corrupt("unreadable header") from None
+            if not isinstance(header, dict):
+                raise _Corrupt("malformed header")
             if header.get("format") != CACHE_FORMAT or header.get("key") != key:
                 raise _Corrupt("the header names another key or format")
+            declared = _declared_bytes(header.get("result"))
+            if len(line) + declared != info.st_size:
+                raise _Corrupt(f"{info.st_size} bytes, its header declares {len(line) + declared}")
+            buffer: memoryview
+            if keep or not declared:
+                payload = bytearray(declared)
+                if declared and handle.readinto(payload) != declared:
+                    raise _Corrupt("truncated")
+                buffer = memoryview(payload)
+            else:
+                # mapped, not read: the checksum of a result that is not needed stays
+                # out of memory (the pages are the file's, dropped when unmapped)
+                buffer = memoryview(mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ))
+                buffer = buffer[len(line) :]
             offset = [0]
-            result = _decode(header.get("result"), memoryview(payload), offset)
-            if offset[0] != len(payload):
+            result = _decode(header.get("result"), buffer, offset)
+            if offset[0] != declared:
                 raise _Corrupt("trailing bytes")
             expected = header.get("checksum")
             actual = content_checksum(result)
             if actual != expected:
                 raise _Corrupt(f"hash mismatch (expected {expected}, got {actual})")
+        return result, actual
+
+    def get(self, key: str, max_bytes: int | None = None) -> tuple[Any, str] | None:
+        path = self.path(key)
+        try:
+            found = self._read(key, path, max_bytes, keep=True)
         except _Corrupt as err:
             self._corrupt(key, path, str(err))
             return None
         except (KeyError, TypeError, ValueError, OSError) as err:
             self._corrupt(key, path, f"unreadable ({type(err).__name__})")
             return None
+        if found is None:
+            return None
         try:
             os.utime(path)  # last use, for pruning by age
         except OSError:
             pass
-        return result, actual
+        return found
 
-    def checksum(self, key: str) -> str | None:
+    def checksum(self, key: str, max_bytes: int | None = None) -> str | None:
         path = self.path(key)
         try:
-            with open(path, "rb") as handle:
-                line = handle.readline(_MAX_HEADER)
-            header = json.loads(line)
-            value = header.get("checksum") if header.get("key") == key else None
-            return value if isinstance(value, str) else None
-        except (OSError, ValueError, AttributeError):
+            found = self._read(key, path, max_bytes, keep=False)
+        except _Corrupt as err:
+            self._corrupt(key, path, str(err), _LEFT_OUT)
             return None
+        except (KeyError, TypeError, ValueError, OSError) as err:
+            self._corrupt(key, path, f"unreadable ({type(err).__name__})", _LEFT_OUT)
+            return None
+        return None if found is None else found[1]
 
     def put(self, key: str, result: Any) -> str:
         """Store ``result``; returns its content checksum.
@@ -321,7 +418,7 @@ class DiskStore:
         try:
             self._prepare()
             self._write(path, header, arrays)
-        except _NotACacheFolder:
+        except CacheFolderError:
             raise
         except OSError as err:
             if not self._unwritable:

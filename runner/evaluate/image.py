@@ -39,7 +39,15 @@ from lotproof.steps import (
 )
 from lotproof.steps.units import Volume, resolve_for_spacing
 
-__all__ = ["ImageResult", "StepRecord", "analyse_sample", "resolve_params"]
+__all__ = [
+    "ENTRY_BYTES_MIN",
+    "ENTRY_BYTES_PER_VALUE",
+    "ImageResult",
+    "StepRecord",
+    "analyse_sample",
+    "entry_bound",
+    "resolve_params",
+]
 
 #: relative tolerance within which an image's own calibration agrees with the recipe's
 CALIBRATION_TOLERANCE = 0.01
@@ -197,6 +205,22 @@ class _StepFailed(Exception):
     pass
 
 
+#: bytes per input value a step result can take at most: a few arrays of the image's
+#: size in 8-byte values, or a table of a few dozen 8-byte columns of at most one row
+#: per value (every object has at least one pixel)
+ENTRY_BYTES_PER_VALUE = 256
+#: what any step result may take whatever the image (a small table of values)
+ENTRY_BYTES_MIN = 1 << 20
+
+
+def entry_bound(values: int) -> int:
+    """The most bytes a cache entry of a step result on images of ``values`` values can hold.
+
+    A cache entry larger than this is damaged and is never read into memory.
+    """
+    return ENTRY_BYTES_MIN + ENTRY_BYTES_PER_VALUE * int(values)
+
+
 def analyse_sample(
     recipe: Recipe,
     sample: Sample,
@@ -251,6 +275,7 @@ def analyse_sample(
 
     data: dict[str, Any] = {name: image.data for name, image in loaded.items()}
     color: set[str] = {name for name, image in loaded.items() if image.is_color}
+    bound = entry_bound(sum(image.data.size for image in loaded.values()))
     del loaded
     records: dict[str, StepRecord] = {}
 
@@ -261,7 +286,7 @@ def analyse_sample(
         kind = REGISTRY[step.kind]
         key = keys[name]
         started = time.perf_counter()
-        hit = store.get(key)
+        hit = store.get(key, bound)
         if hit is not None:
             out, checksum = hit
             records[name] = StepRecord(
@@ -341,7 +366,7 @@ def analyse_sample(
                 step.kind,
                 REGISTRY[step.kind].version,
                 keys[name],
-                store.checksum(keys[name]),
+                store.checksum(keys[name], bound),
                 "skipped",
                 0.0,
             )

@@ -221,6 +221,7 @@ def run_lot(
     _refuse_inside_a_run(Path(out), "output folder")
     if isinstance(store, DiskStore):
         _refuse_inside_a_run(store.root, "cache folder")
+        store.check_folder()  # another folder's files are never adopted as a cache
     if samples is None:
         samples = find_samples(lot, recipe.inputs)
     if sign is not None:
