@@ -362,7 +362,7 @@ def scale_check(
                 f"the pitch {params.pitch} spans {expected:.3g} px along {axis} at the recipe's "
                 f"pixel size; scale-check needs at least {MIN_PITCH_PX:g} px per period"
             )
-    wanted = ("x", "y")
+    wanted: tuple[str, ...] = ("x", "y")
     if params.target == "lines":
         wanted = tuple(a for a, (e, side) in axes.items() if side / e >= MIN_PERIODS)
     short = [a for a in ("x", "y") if axes[a][1] / axes[a][0] < MIN_PERIODS]

@@ -34,7 +34,7 @@ beyond 2**53 (not all exact in float64).
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from types import MappingProxyType
 
 import numpy as np
@@ -52,7 +52,7 @@ __all__ = [
     "block_edges",
     "image_quality",
     "immerkaer_sigma",
-    "order_statistic",
+    "order_statistics",
     "stated_range",
 ]
 
@@ -165,19 +165,21 @@ def stated_range(dtype: np.dtype, bit_depth: int | None) -> tuple[int, int] | tu
     return 0.0, float(2**bit_depth - 1)
 
 
-def order_statistic(values: np.ndarray, numerator: int, denominator: int) -> float:
-    """The ``p = numerator / denominator`` quantile as an order statistic, exactly.
+def order_statistics(values: np.ndarray, fractions: Sequence[tuple[int, int]]) -> list[float]:
+    """Quantiles ``p = numerator / denominator`` as order statistics, exactly.
 
-    The ``k``-th smallest value with ``k = max(1, ceil(n p))`` (1-based): the
-    inverse of the empirical distribution function, definition 1 of Hyndman &
-    Fan (1996), ``numpy.percentile(..., method="inverted_cdf")``. ``k`` is
-    computed in integers, so no rounding of ``n p`` can move it; the value is
-    always one of the image's own values.
+    For each ``p`` the ``k``-th smallest value with ``k = max(1, ceil(n p))``
+    (1-based): the inverse of the empirical distribution function,
+    definition 1 of Hyndman & Fan (1996), what
+    ``numpy.percentile(..., method="inverted_cdf")`` computes. ``k`` is
+    computed in integers, so no rounding of ``n p`` can move it; each value
+    is one of the image's own values. One partial sort serves every ``p``.
     """
     flat = values.reshape(-1)
     n = flat.size
-    k = max(1, -(-n * numerator // denominator))
-    return float(np.partition(flat, k - 1)[k - 1])
+    ranks = [max(1, -(-n * numerator // denominator)) - 1 for numerator, denominator in fractions]
+    ordered = np.partition(flat, sorted(set(ranks)))
+    return [float(ordered[k]) for k in ranks]
 
 
 def _slices(image: np.ndarray) -> list[np.ndarray]:
@@ -212,22 +214,36 @@ def immerkaer_sigma(image: np.ndarray) -> float:
     return math.sqrt(math.pi / 2.0) / 6.0 * total / count
 
 
+def _pooled_variance(parts: list[tuple[int, float, float]]) -> float:
+    """Population variance from ``(count, mean, sum of squared deviations)`` of disjoint parts.
+
+    ``M2 = sum_i M2_i + sum_i n_i (mean_i - mean)^2`` (Chan, Golub & LeVeque's
+    pairwise update, all parts at once): one slice in memory at a time.
+    """
+    n = sum(count for count, _, _ in parts)
+    mean = math.fsum(count * m for count, m, _ in parts) / n
+    spread = math.fsum(m2 for _, _, m2 in parts)
+    spread += math.fsum(count * (m - mean) ** 2 for count, m, _ in parts)
+    return spread / n
+
+
+def _moments(values: np.ndarray) -> tuple[int, float, float]:
+    data = values.astype(np.float64, copy=False)
+    mean = float(np.mean(data))
+    return data.size, mean, float(np.sum(np.square(data - mean)))
+
+
 def _sharpness(image: np.ndarray) -> float:
     """var(Laplacian at the interior pixels of every slice) / var(image), population variances."""
     planes = _slices(image)
-    n = image.size
-    mean = math.fsum(float(np.sum(p, dtype=np.float64)) for p in planes) / n
-    spread = math.fsum(float(np.sum(np.square(p.astype(np.float64) - mean))) for p in planes)
-    if spread == 0.0:
+    variance = _pooled_variance([_moments(plane) for plane in planes])
+    if variance == 0.0:
         return 0.0  # a constant image: no structure to be sharp
-    laplacians = []
+    laplacian = []
     for plane in planes:
         d2y, d2x = _second_differences(plane.astype(np.float64, copy=False))
-        laplacians.append(d2y + d2x)
-    lap_n = sum(lap.size for lap in laplacians)
-    lap_mean = math.fsum(float(np.sum(lap)) for lap in laplacians) / lap_n
-    lap_spread = math.fsum(float(np.sum(np.square(lap - lap_mean))) for lap in laplacians)
-    return (lap_spread / lap_n) / (spread / n)
+        laplacian.append(_moments(d2y + d2x))
+    return _pooled_variance(laplacian) / variance
 
 
 def block_edges(size: int, blocks: int) -> list[int]:
@@ -237,17 +253,15 @@ def block_edges(size: int, blocks: int) -> list[int]:
 
 
 def _illumination_ratio(image: np.ndarray, blocks: int) -> float:
-    data = image.astype(np.float64, copy=False)
-    sums = data
-    for axis in range(data.ndim):
-        edges = block_edges(data.shape[axis], blocks)
-        sums = np.add.reduceat(sums, edges[:-1], axis=axis)
-    counts = np.ones((1,) * data.ndim)
-    for axis in range(data.ndim):
-        widths = np.diff(block_edges(data.shape[axis], blocks)).astype(np.float64)
-        shape = [1] * data.ndim
-        shape[axis] = widths.size
-        counts = counts * widths.reshape(shape)
+    sums = image
+    counts = np.ones((1,) * image.ndim)
+    for axis in range(image.ndim):
+        edges = block_edges(image.shape[axis], blocks)
+        # float64 sums straight from the stored values: no float copy of a volume
+        sums = np.add.reduceat(sums, edges[:-1], axis=axis, dtype=np.float64)
+        shape = [1] * image.ndim
+        shape[axis] = len(edges) - 1
+        counts = counts * np.diff(edges).astype(np.float64).reshape(shape)
     means = sums / counts
     low, high = float(means.min()), float(means.max())
     if low < 0.0 or high <= 0.0:
@@ -362,6 +376,9 @@ def image_quality(
     .. [3] R. J. Hyndman, Y. Fan, Sample quantiles in statistical packages,
        The American Statistician 50(4) (1996) 361-365,
        doi:10.1080/00031305.1996.10473566.
+    .. [4] T. F. Chan, G. H. Golub, R. J. LeVeque, Algorithms for computing
+       the sample variance: analysis and recommendations, The American
+       Statistician 37(3) (1983) 242-247, doi:10.1080/00031305.1983.10483115.
     """
     low, high = stated_range(image.dtype, params.bit_depth)
     if image.size == 0:
@@ -391,8 +408,7 @@ def image_quality(
         )
 
     n = image.size
-    q_low = order_statistic(image, *RANGE_PERCENTILES[0])
-    q_high = order_statistic(image, *RANGE_PERCENTILES[1])
+    q_low, q_high = order_statistics(image, RANGE_PERCENTILES)
     values = {
         "saturated_fraction": int(np.count_nonzero(image >= high)) / n,
         "dark_clipped_fraction": int(np.count_nonzero(image <= low)) / n,

@@ -33,7 +33,7 @@ from lotproof.steps.quality import (
     block_edges,
     image_quality,
     immerkaer_sigma,
-    order_statistic,
+    order_statistics,
     stated_range,
 )
 from lotproof.steps.units import Length
@@ -135,11 +135,13 @@ def test_stated_range() -> None:
 def test_order_statistic_is_ceil_n_p_in_integers() -> None:
     values = np.arange(1, 1001)[::-1].copy()  # 1000 .. 1
     # ceil(1000 * 0.999) = 999, ceil(1000 * 0.001) = 1: exactly, no float rounding
-    assert order_statistic(values, 999, 1000) == 999.0
-    assert order_statistic(values, 1, 1000) == 1.0
-    assert order_statistic(np.arange(1, 1002), 999, 1000) == 1000.0  # ceil(1000.999)
-    assert order_statistic(np.array([[7]]), 1, 1000) == 7.0
-    assert order_statistic(np.array([3, 1, 2]), 999, 1000) == 3.0
+    assert order_statistics(values, [(999, 1000)])[0] == 999.0
+    assert order_statistics(values, [(1, 1000)])[0] == 1.0
+    assert order_statistics(np.arange(1, 1002), [(999, 1000)])[0] == 1000.0  # ceil(1000.999)
+    assert order_statistics(np.array([[7]]), [(1, 1000)])[0] == 7.0
+    assert order_statistics(np.array([3, 1, 2]), [(999, 1000)])[0] == 3.0
+    # several quantiles from one partial sort, in the order asked
+    assert order_statistics(values, [(999, 1000), (1, 2), (1, 1000)]) == [999.0, 500.0, 1.0]
 
 
 def test_block_edges() -> None:
@@ -244,6 +246,18 @@ def test_volume_sharpness_is_in_plane() -> None:
     volume[1::2] = 200
     values = quality(volume)
     assert values["sharpness"] == 0.0 and values["noise_sigma"] == 0.0
+
+
+def test_volume_sharpness_pools_the_slices() -> None:
+    rng = np.random.default_rng(17)
+    volume = rng.integers(0, 256, (5, 12, 9)).astype(np.uint8)
+    data = volume.astype(np.float64)
+    laplacians = [
+        (p[:-2, 1:-1] + p[2:, 1:-1] + p[1:-1, :-2] + p[1:-1, 2:] - 4 * p[1:-1, 1:-1]).ravel()
+        for p in data
+    ]
+    expected = np.var(np.concatenate(laplacians)) / np.var(data)
+    assert quality(volume)["sharpness"] == pytest.approx(expected, rel=1e-12)
 
 
 def test_gain_and_offset() -> None:

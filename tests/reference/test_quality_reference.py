@@ -28,7 +28,7 @@ from lotproof.steps.quality import (
     block_edges,
     image_quality,
     immerkaer_sigma,
-    order_statistic,
+    order_statistics,
 )
 
 IMMERKAER = np.array([[1, -2, 1], [-2, 4, -2], [1, -2, 1]], dtype=np.float64)
@@ -75,7 +75,7 @@ def test_order_statistics_equal_numpy_inverted_cdf(n: int) -> None:
     values = rng.normal(size=n)
     for numerator in (1, 999):
         expected = np.percentile(values, 100 * numerator / 1000, method="inverted_cdf")
-        assert order_statistic(values, numerator, 1000) == float(expected)
+        assert order_statistics(values, [(numerator, 1000)])[0] == float(expected)
 
 
 def test_order_statistic_where_n_p_is_a_whole_number() -> None:
@@ -86,8 +86,8 @@ def test_order_statistic_where_n_p_is_a_whole_number() -> None:
     rng = np.random.default_rng(1000)
     values = rng.normal(size=1000)
     ordered = np.sort(values)
-    assert order_statistic(values, 999, 1000) == ordered[998]
-    assert order_statistic(values, 1, 1000) == ordered[0]
+    assert order_statistics(values, [(999, 1000)])[0] == ordered[998]
+    assert order_statistics(values, [(1, 1000)])[0] == ordered[0]
 
 
 def test_used_range_of_a_ramp_of_distinct_values() -> None:
