@@ -20,6 +20,7 @@ from lotproof.steps.units import AREA_UNITS, LENGTH_UNITS, Area, Length, resolve
 # Importing the family modules registers their step kinds.
 from lotproof.steps import filters, masks, measure, morphology, threshold  # noqa: F401  isort: skip
 from lotproof.steps import granulometry, segmentation  # noqa: F401  isort: skip
+from lotproof.steps import calibration, quality  # noqa: F401  isort: skip
 
 __all__ = [
     "AREA_UNITS",
