@@ -36,6 +36,7 @@ FILES = (
     "test_fuzz_recipes.py",
     "test_faults.py",
     "test_security.py",
+    "test_hardening.py",
 )
 
 #: (row, outcome, test functions); rows appear in this order
@@ -129,6 +130,53 @@ SECURITY_ROWS = [
             "test_an_input_over_the_size_bound_is_refused_before_it_is_read",
             "test_a_sparse_input_of_more_than_2_GiB_is_refused_without_reading_it",
             "test_cache_headers_and_declared_sizes_are_bounded",
+        ),
+    ),
+]
+
+HARDENING_ROWS = [
+    (
+        "hostile: a recipe's git repository",
+        "`core.fsmonitor`, filter, textconv, pager and hooks set in the repository's config: none "
+        "runs; only object-reading git plumbing is used and `modified` is decided by hashing the "
+        "recipe as a blob",
+        (
+            "test_git_runs_nothing_a_repository_configures",
+            "test_modified_compares_the_bytes_with_the_committed_blob",
+        ),
+    ),
+    (
+        "hostile: recipe content that once crashed a run",
+        "a revision beyond canonical JSON's integers and more than 400 steps are recipe errors "
+        "(exit 2) at their position; the longest chain allowed runs; globs with `~`, control "
+        "characters or nothing are refused",
+        (
+            "test_a_revision_beyond_canonical_json_is_a_recipe_error",
+            "test_more_steps_than_the_bound_is_a_recipe_error",
+            "test_the_longest_chain_allowed_runs",
+            "test_globs_of_home_folders_and_control_characters_are_refused",
+        ),
+    ),
+    (
+        "hostile: the run folder",
+        "an added folder, even an empty one, is an alteration (exit 4); `--out` or `--cache` inside "
+        "a sealed run folder is refused (exit 2) and the run stays `intact`",
+        (
+            "test_an_empty_folder_added_to_a_run_is_an_alteration",
+            "test_output_or_cache_inside_a_sealed_run_is_refused",
+        ),
+    ),
+    (
+        "hostile: the cache",
+        "an entry whose header names a false checksum never reaches `steps.csv` or the ledger; an "
+        "entry larger than a result of the image can be is refused before it is read; a pipe in "
+        "place of an entry is damage, not a hang (`-j 1` and `-j 2`); a `--cache` folder holding "
+        "other files is refused (exit 2)",
+        (
+            "test_a_cache_entry_whose_header_lies_never_reaches_the_record",
+            "test_a_cache_entry_larger_than_a_result_can_be_is_never_read",
+            "test_a_pipe_in_place_of_a_cache_entry_is_damage_not_a_hang",
+            "test_a_foreign_folder_is_never_taken_as_the_cache",
         ),
     ),
 ]
@@ -277,6 +325,7 @@ def table(items: list[_Item]) -> str:
         *_fuzz(items),
         *_rows_for(items, FAULT_ROWS, "test_faults.py"),
         *_rows_for(items, SECURITY_ROWS, "test_security.py"),
+        *_rows_for(items, HARDENING_ROWS, "test_hardening.py"),
         "",
         "Exit codes in these cases: 2 the recipe or the command line is invalid (nothing ran, nothing",
         "written); 3 an image could not be analysed, or the run folder or its ledger could not be",
