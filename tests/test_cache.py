@@ -333,7 +333,8 @@ def _run_files(run: Path) -> dict[str, bytes]:
     return {
         p.relative_to(run).as_posix(): _WHEN.sub(b"<time>", p.read_bytes())
         for p in sorted(run.rglob("*"))
-        if p.is_file() and p.name not in ("resolved.json", "ledger.jsonl", "SHA256SUMS")
+        if p.is_file()
+        and p.name not in ("resolved.json", "ledger.jsonl", "ledger.sha256", "SHA256SUMS")
     }
 
 

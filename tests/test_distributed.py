@@ -157,7 +157,7 @@ def _run_files(run: Path, *, cache_column: bool = True) -> dict[str, bytes]:
     """
     out = {}
     for p in sorted(run.rglob("*")):
-        if not p.is_file() or p.name == "ledger.jsonl":
+        if not p.is_file() or p.name in ("ledger.jsonl", "ledger.sha256"):
             continue
         name = p.relative_to(run).as_posix()
         data = p.read_bytes()

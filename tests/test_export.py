@@ -145,13 +145,16 @@ def test_exports_refuse_an_unfinished_run(record: Path, tmp_path: Path) -> None:
 
 def test_prov_reads_only_the_ledger(record: Path, tmp_path: Path) -> None:
     # Step events carry the names each step is applied to, so the PROV document is made from
-    # the ledger alone: an edited recipe.yaml cannot change it (and `verify` reports the edit).
+    # the ledger alone; and nothing is exported from a record that does not verify: an
+    # edited recipe.yaml can never change an export.
     run = copy_run(record, tmp_path, "run")
-    before = prov_document(run)
+    prov_document(run)
     with open(run / "recipe.yaml", "ab") as handle:
         handle.write(b"# edited\n")
-    assert prov_document(run) == before
     assert verify_run(run).status == "altered"
+    for export in (prov_document, in_toto_statement):
+        with pytest.raises(LedgerError, match="the record is altered"):
+            export(run)
 
 
 def test_cli_export(

@@ -355,3 +355,43 @@ def test_a_foreign_folder_is_never_taken_as_the_cache(
                 ]
             )
         assert ended.value.code == EXIT_OK
+
+
+def test_the_ledgers_last_line_is_covered_without_a_key(
+    record_copy: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    ledger = record_copy / "ledger.jsonl"
+    # source: coreutils sha256sum -c reads '<hex>  <name>' lines (GNU coreutils manual, sha256sum)
+    done = subprocess.run(
+        ["sha256sum", "-c", "ledger.sha256"],
+        cwd=record_copy,
+        capture_output=True,
+        text=True,
+        check=False,
+    )
+    assert done.returncode == 0 and "ledger.jsonl: OK" in done.stdout
+    last = ledger.read_bytes().splitlines()[-1]
+    assert b'"type":"run-end"' in last and b'"exit_code":0' in last
+    ledger.write_bytes(ledger.read_bytes().replace(b'"exit_code":0', b'"exit_code":1'))
+    report = verify_run(record_copy)
+    assert report.status == "altered"
+    assert report.problems[0].startswith("ledger.jsonl: its sha256 is not the one ledger.sha256")
+    with pytest.raises(SystemExit) as ended:
+        main(["export", str(record_copy), "--attestation"])
+    assert ended.value.code == 4
+    assert "altered" in capsys.readouterr().err
+
+
+def test_a_finished_run_without_its_ledger_sum_is_altered(record_copy: Path) -> None:
+    (record_copy / "ledger.sha256").unlink()
+    report = verify_run(record_copy)
+    assert report.status == "altered"
+    assert "ledger.sha256: missing" in report.problems[0]
+
+
+def test_a_run_stopped_between_the_ledger_sum_and_run_end_is_unfinished(record_copy: Path) -> None:
+    ledger = record_copy / "ledger.jsonl"
+    ledger.write_bytes(b"".join(ledger.read_bytes().splitlines(keepends=True)[:-1]))
+    report = verify_run(record_copy)
+    assert report.status == "unfinished"
+    assert not any("ledger.sha256" in p for p in report.problems)

@@ -76,7 +76,7 @@ def test_writer_chains_lines_from_genesis(tmp_path: Path) -> None:
     with LedgerWriter(path) as ledger:
         assert ledger.seal is None
         first = ledger.append("run-start", time_utc="t0")
-        second = ledger.append("run-end", time_utc="t1", exit_code=0)
+        second = ledger.append_end(time_utc="t1", exit_code=0)
         assert ledger.seal == second and ledger.count == 2
     lines = path.read_bytes().split(b"\n")
     assert lines[-1] == b""
@@ -183,7 +183,7 @@ def test_sha256sums_disagreeing_with_the_ledger(tmp_path: Path) -> None:
         ledger.append("output", path="a.txt", sha256=_sha(b"a"), size=1)
         sums = (run / SUMS_FILE).read_bytes()
         ledger.append("output", path=SUMS_FILE, sha256=_sha(sums), size=len(sums))
-        ledger.append("run-end", time_utc="t", exit_code=0)
+        ledger.append_end(time_utc="t", exit_code=0)
     report = verify_run(run)
     assert report.status == "altered"
     assert report.problems == [f"{SUMS_FILE} line 1: a.txt differs from the ledger's sha256"]
@@ -232,7 +232,7 @@ def test_empty_and_missing_ledger(tmp_path: Path) -> None:
 def test_events_after_run_end_are_altered(tmp_path: Path) -> None:
     with LedgerWriter(tmp_path / LEDGER_FILE) as ledger:
         ledger.append("run-end", time_utc="t", exit_code=0)
-        ledger.append("run-end", time_utc="t", exit_code=0)
+        ledger.append_end(time_utc="t", exit_code=0)
     assert verify_run(tmp_path).problems == [
         f"{LEDGER_FILE} line 1: events follow the run-end event"
     ]
@@ -240,7 +240,9 @@ def test_events_after_run_end_are_altered(tmp_path: Path) -> None:
 
 def test_non_canonical_line_is_altered(tmp_path: Path) -> None:
     line = b'{"exit_code":0, "prev":"' + GENESIS.encode() + b'","seq":1,"type":"run-end"}'
-    (tmp_path / LEDGER_FILE).write_bytes(line + b"\n")
+    data = line + b"\n"
+    (tmp_path / LEDGER_FILE).write_bytes(data)
+    (tmp_path / "ledger.sha256").write_text(f"{_sha(data)}  {LEDGER_FILE}\n")
     assert verify_run(tmp_path).problems == [
         f"{LEDGER_FILE} line 1: not in canonical form (RFC 8785); the line was edited"
     ]
@@ -249,7 +251,7 @@ def test_non_canonical_line_is_altered(tmp_path: Path) -> None:
 def test_output_path_that_leaves_the_run_folder(tmp_path: Path) -> None:
     with LedgerWriter(tmp_path / LEDGER_FILE) as ledger:
         ledger.append("output", path="../outside", sha256=_sha(b""), size=0)
-        ledger.append("run-end", time_utc="t", exit_code=0)
+        ledger.append_end(time_utc="t", exit_code=0)
     problems = verify_run(tmp_path).problems
     assert problems == [
         f"{LEDGER_FILE} line 1: output path '../outside' is not a plain path inside the run folder"

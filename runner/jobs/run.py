@@ -277,7 +277,7 @@ def run_lot(
             path = run_dir / name
             ledger.append("output", path=name, sha256=file_sha256(path), size=path.stat().st_size)
         summary = RunSummary(run_dir, recipe, lot, results, verdicts, files, store.location)
-        seal = ledger.append("run-end", time_utc=utc_now(), exit_code=summary.exit_code)
+        seal = ledger.append_end(time_utc=utc_now(), exit_code=summary.exit_code)
     summary.seal = seal
     if sign is not None:
         write_signature(run_dir, seal, sign)

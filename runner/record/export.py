@@ -35,6 +35,7 @@ from lotproof.runner.record.layout import LEDGER_FILE, RECIPE_FILE
 from lotproof.runner.record.ledger import LedgerError, canonical, line_hash
 from lotproof.runner.record.reading import RunFolder
 from lotproof.runner.record.signing import load_private_key
+from lotproof.runner.record.verify import verify_run
 
 __all__ = [
     "PAYLOAD_TYPE",
@@ -73,6 +74,15 @@ def _seal(run_dir: Path) -> str:
     return line_hash(last)
 
 
+def _intact_events(run_dir: Path) -> list[dict[str, Any]]:
+    """The ledger's events, once :func:`verify_run` found the whole record intact."""
+    report = verify_run(run_dir)
+    if report.status != "intact":
+        first = report.problems[0] if report.problems else report.status
+        raise LedgerError(f"{run_dir}: the record is {report.status} ({first}); nothing exported")
+    return RunFolder(run_dir).events()
+
+
 def in_toto_statement(run_dir: Path) -> dict[str, Any]:
     """The run as an in-toto Statement v1 (a plain dict, ready for JSON).
 
@@ -85,9 +95,9 @@ def in_toto_statement(run_dir: Path) -> dict[str, Any]:
     Raises
     ------
     LedgerError
-        When the ledger is missing, broken or unfinished.
+        When the record does not verify as intact (missing, altered or unfinished).
     """
-    events = RunFolder(run_dir).events()
+    events = _intact_events(run_dir)
     start, recipe, end = _one(events, "run-start"), _one(events, "recipe"), events[-1]
     outputs = sorted(_of_type(events, "output"), key=lambda e: e["path"])
     subject = [{"name": e["path"], "digest": {"sha256": e["sha256"]}} for e in outputs]
@@ -215,9 +225,9 @@ def prov_document(run_dir: Path) -> dict[str, Any]:
     Raises
     ------
     LedgerError
-        When the ledger is missing, broken or unfinished.
+        When the record does not verify as intact (missing, altered or unfinished).
     """
-    events = RunFolder(run_dir).events()
+    events = _intact_events(run_dir)
     start, recipe, end = _one(events, "run-start"), _one(events, "recipe"), events[-1]
     tool = start.get("tool")
     version = tool.get("version") if isinstance(tool, dict) else tool

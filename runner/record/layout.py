@@ -14,6 +14,7 @@ Layout (see DESIGN.md, "Run record")::
     RUN/figures/IMAGE.thumbnail.png, IMAGE.overlay.png   for people to look at
     RUN/report.html      the self-contained customer report
     RUN/ledger.jsonl     the hash-chained record of everything above
+    RUN/ledger.sha256    the sha256 of the whole ledger, in ``sha256sum -c`` form
     RUN/SHA256SUMS       every output file, in ``sha256sum -c`` form
     RUN/seal.sig         the Ed25519 signature of the seal, when signed
 
@@ -37,6 +38,7 @@ __all__ = [
     "INPUTS_FILE",
     "KEPT_FOLDER",
     "LEDGER_FILE",
+    "LEDGER_SUM_FILE",
     "OBJECTS_FILE",
     "RECIPE_FILE",
     "REPORT_FILE",
@@ -66,6 +68,8 @@ STEPS_FILE = "steps.csv"
 VERDICTS_FILE = "verdicts.json"
 REPORT_FILE = "report.html"
 LEDGER_FILE = "ledger.jsonl"
+#: the sha256 of the whole ledger, written just before its last line; covers that line
+LEDGER_SUM_FILE = "ledger.sha256"
 SUMS_FILE = "SHA256SUMS"
 SIGNATURE_FILE = "seal.sig"
 KEPT_FOLDER = "kept"

@@ -44,7 +44,7 @@ import rfc8785
 from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_INTEGRITY, LotproofError
 from lotproof.runner.evaluate.hashing import file_sha256
 from lotproof.runner.files import fsync_folder, write_file
-from lotproof.runner.record.layout import LEDGER_FILE, SUMS_FILE, safe_relative
+from lotproof.runner.record.layout import LEDGER_FILE, LEDGER_SUM_FILE, SUMS_FILE, safe_relative
 
 __all__ = [
     "EVENT_TYPES",
@@ -56,6 +56,7 @@ __all__ = [
     "canonical",
     "line_hash",
     "parse_ledger",
+    "write_ledger_sum",
     "write_sha256sums",
 ]
 
@@ -155,6 +156,7 @@ class LedgerWriter:
         self._seq = 0
         self._size = 0
         self._last = GENESIS
+        self._digest = hashlib.sha256()  # of every byte written so far
         self._seal: str | None = None
         try:
             # unbuffered: a failed write fails here, not later in close()
@@ -191,18 +193,8 @@ class LedgerWriter:
         """
         if self._file is None:
             raise LedgerWriteError(f"{self.path}: the ledger is closed")
-        seq, last = self._seq, self._last
-        lines = []
-        for type_, fields in events:
-            clash = [k for k in _RESERVED if k in fields]
-            if clash:
-                raise ValueError(f"event fields {clash} are set by the ledger itself")
-            if not isinstance(type_, str) or not type_:
-                raise ValueError(f"an event type is a non-empty text, got {type_!r}")
-            seq += 1
-            line = canonical({"seq": seq, "type": type_, "prev": last, **fields})
-            last = line_hash(line)
-            lines.append(line)
+        lines = self._lines(events)
+        last = line_hash(lines[-1]) if lines else self._last
         if not lines:
             return self._seal or GENESIS
         data = b"".join(line + b"\n" for line in lines)
@@ -226,10 +218,47 @@ class LedgerWriter:
                 f"{self.path}: cannot write event {self._seq + 1} ({err.strerror}); "
                 "the record is incomplete"
             ) from None
-        self._seq = seq
+        self._seq += len(lines)
         self._size += len(data)
+        self._digest.update(data)
         self._last = self._seal = last
         return self._seal
+
+    def _lines(self, events: list[tuple[str, dict[str, Any]]]) -> list[bytes]:
+        seq, last = self._seq, self._last
+        lines = []
+        for type_, fields in events:
+            clash = [k for k in _RESERVED if k in fields]
+            if clash:
+                raise ValueError(f"event fields {clash} are set by the ledger itself")
+            if not isinstance(type_, str) or not type_:
+                raise ValueError(f"an event type is a non-empty text, got {type_!r}")
+            seq += 1
+            line = canonical({"seq": seq, "type": type_, "prev": last, **fields})
+            last = line_hash(line)
+            lines.append(line)
+        return lines
+
+    def append_end(self, **fields: Any) -> str:
+        """Write ``ledger.sha256`` for the ledger as it will be, then the ``run-end`` event.
+
+        The run's last line is covered by no later line of the chain; the checksum
+        file, written first with the digest the whole ledger will have, covers it
+        (see :func:`write_ledger_sum`). A run stopped between the two leaves a ledger
+        without run-end: unfinished. Returns the seal.
+        """
+        write_ledger_sum(self.path.parent, self.sha256_with("run-end", **fields))
+        return self.append("run-end", **fields)
+
+    def sha256_with(self, type: str, /, **fields: Any) -> str:
+        """sha256 hex of the whole ledger file as it will be once this one event is appended.
+
+        Nothing is written: the caller records the digest elsewhere first (the ledger's
+        own checksum file) and then appends the very same event.
+        """
+        digest = self._digest.copy()
+        digest.update(self._lines([(type, fields)])[0] + b"\n")
+        return digest.hexdigest()
 
     def close(self) -> None:
         """Close the file (idempotent)."""
@@ -246,6 +275,26 @@ class LedgerWriter:
 
     def __exit__(self, *exc: object) -> None:
         self.close()
+
+
+def write_ledger_sum(run_dir: Path, digest: str) -> Path:
+    """Write ``ledger.sha256``: the sha256 of the whole ledger, ``<hex>  ledger.jsonl``.
+
+    It is written just before the ledger's last line, with the digest the ledger will
+    have once that line is appended (:meth:`LedgerWriter.sha256_with`), so it covers the
+    ``run-end`` line that the chain itself cannot: ``sha256sum -c ledger.sha256`` in the
+    run folder checks it without lotproof. Never overwrites.
+    """
+    target = Path(run_dir) / LEDGER_SUM_FILE
+    try:
+        write_file(target, f"{digest}  {LEDGER_FILE}\n".encode("ascii"), replace=False)
+    except FileExistsError:
+        raise LedgerWriteError(
+            f"{target}: exists already; run files are never overwritten"
+        ) from None
+    except OSError as err:
+        raise LedgerWriteError(f"{target}: cannot write ({err.strerror})") from None
+    return target
 
 
 def write_sha256sums(run_dir: Path, files: list[str]) -> Path:

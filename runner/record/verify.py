@@ -7,6 +7,7 @@ the ledger does not record. It reports; it never changes the folder.
 
 from __future__ import annotations
 
+import hashlib
 import os
 import re
 from dataclasses import dataclass, field
@@ -17,6 +18,7 @@ from lotproof.runner.errors import EXIT_INTEGRITY
 from lotproof.runner.evaluate.hashing import file_sha256
 from lotproof.runner.record.layout import (
     LEDGER_FILE,
+    LEDGER_SUM_FILE,
     RECIPE_FILE,
     SIGNATURE_FILE,
     SUMS_FILE,
@@ -115,6 +117,30 @@ def _check_sums(run_dir: Path, recorded: dict[str, str], problems: list[str]) ->
     return listed
 
 
+def _check_ledger_sum(run_dir: Path, problems: list[str]) -> None:
+    """``ledger.sha256`` must name the sha256 of the ledger's bytes."""
+    folder = RunFolder(run_dir)
+    try:
+        text = folder.text(LEDGER_SUM_FILE, required=False)
+        data = folder.bytes(LEDGER_FILE)
+    except RunFolderReadError as err:
+        problems.append(str(err))
+        return
+    if text is None:
+        problems.append(
+            f"{LEDGER_SUM_FILE}: missing; the ledger's last line (run-end) cannot be checked"
+        )
+        return
+    match = re.fullmatch(rf"([0-9a-f]{{64}})  {re.escape(LEDGER_FILE)}\n", text)
+    if match is None:
+        problems.append(f"{LEDGER_SUM_FILE}: not one '<sha256>  {LEDGER_FILE}' line")
+    elif match.group(1) != hashlib.sha256(data or b"").hexdigest():
+        problems.append(
+            f"{LEDGER_FILE}: its sha256 is not the one {LEDGER_SUM_FILE} holds (the ledger was "
+            "changed after the run)"
+        )
+
+
 def verify_run(
     run_dir: Path, public_key: Path | None = None, *, expected_seal: str | None = None
 ) -> VerifyReport:
@@ -131,14 +157,20 @@ def verify_run(
     4. the seal equals ``expected_seal`` when one is given (the seal printed at the
        end of the run); with ``public_key``, ``seal.sig`` verifies over the seal's
        ASCII hex with Ed25519 (a missing signature is then a failure);
-    5. every file in the run folder is in an output event (except the ledger and
-       the signature): others are reported as "not recorded". After ``run-end``
-       such a file makes the run altered; in a run that never finished it is
-       expected (written after the last event) and the run is unfinished.
+    5. ``ledger.sha256`` holds the sha256 of the whole ledger (a finished run must
+       have it: it is what covers the ``run-end`` line, which no later line chains);
+    6. every file in the run folder is in an output event (except the ledger, its
+       checksum file and the signature): others are reported as "not recorded".
+       After ``run-end`` such a file makes the run altered; in a run that never
+       finished it is expected (written after the last event) and the run is
+       unfinished.
 
-    The last line of the ledger is covered only by the seal: without
-    ``expected_seal`` or a signature, an edit of the last line that keeps it
-    canonical JSON cannot be told from the original.
+    What this can and cannot detect: any change to one file of the record, the
+    ledger's last line included, and any file added or removed. Whoever rewrites
+    the ledger *and* recomputes every hash that refers to it (the chain, the
+    outputs' sums, ``ledger.sha256``) makes a consistent forgery that only
+    ``expected_seal`` (the seal printed at the end of the run), a signature
+    checked with ``public_key``, or a rerun can tell from the original.
     """
     run_dir = Path(run_dir)
     problems: list[str] = []
@@ -177,7 +209,7 @@ def verify_run(
         if not isinstance(digest, str) or not _HEX64.match(digest):
             problems.append(f"{where}: output {name} has no sha256")
             continue
-        if name in (LEDGER_FILE, SIGNATURE_FILE):
+        if name in (LEDGER_FILE, LEDGER_SUM_FILE, SIGNATURE_FILE):
             problems.append(f"{where}: {name} cannot be an output of its own record")
             continue
         recorded[name] = digest
@@ -190,12 +222,14 @@ def verify_run(
 
     if SUMS_FILE in recorded:
         _check_sums(run_dir, recorded, problems)
+    if finished:
+        _check_ledger_sum(run_dir, problems)
 
     unrecorded = [
         f"{path}: not recorded in the ledger"
         + (" (written after its last event)" if not finished else " (added after the run)")
         for path in sorted(_files_under(run_dir))
-        if path not in recorded and path not in (LEDGER_FILE, SIGNATURE_FILE)
+        if path not in recorded and path not in (LEDGER_FILE, LEDGER_SUM_FILE, SIGNATURE_FILE)
     ]
 
     if expected_seal is not None and seal != expected_seal.strip().lower():

@@ -206,7 +206,7 @@ def test_seal_signature_is_ed25519_over_the_hex_text(tmp_path: Path) -> None:
     run = tmp_path / "run"
     run.mkdir()
     with LedgerWriter(run / LEDGER_FILE) as ledger:
-        seal = ledger.append("run-end", time_utc="t", exit_code=0)
+        seal = ledger.append_end(time_utc="t", exit_code=0)
     signature = sign_seal(seal, private)
     # source: RFC 8032 section 5.1 (Ed25519 is deterministic): the RFC key signs the
     # seal's ASCII hex exactly as cryptography's own Ed25519 does
@@ -302,7 +302,7 @@ def _prov_run(tmp_path: Path) -> Path:
         for name in ("recipe.yaml", "kept/d1/spots.tif"):
             data = (run / name).read_bytes()
             ledger.append("output", path=name, sha256=_sha(data), size=len(data))
-        ledger.append("run-end", time_utc="2026-12-01T21:45:01Z", exit_code=0)
+        ledger.append_end(time_utc="2026-12-01T21:45:01Z", exit_code=0)
     return run
 
 
