@@ -1,0 +1,220 @@
+"""Fixtures of the catalogue tests: a throw-away PostgreSQL server, catalogues, small lots.
+
+``postgres_server`` (session) makes a new cluster with the server binaries of
+Debian's ``postgresql`` package (``/usr/lib/postgresql/*/bin``) in a temporary
+folder, listening only on a unix socket there, and removes it at the end.
+``initdb`` and ``postgres`` refuse to run as root, so as root they run as the
+``postgres`` user. Without the binaries the PostgreSQL tests fail when ``CI`` is
+set (CI must have them: ``.ci/run`` installs the package) and are skipped
+otherwise.
+
+``catalogue_url`` is parametrised: every test that takes it runs once on an SQLite
+file and once on a new PostgreSQL database.
+"""
+
+from __future__ import annotations
+
+import itertools
+import os
+import pwd
+import shutil
+import socket
+import subprocess
+import tempfile
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pytest
+import tifffile
+
+PG_GLOB = "/usr/lib/postgresql/*/bin"
+
+RECIPE = """\
+format: lotproof/1
+name: {name}
+revision: {revision}
+pixel_size: 0.5 um
+inputs:
+  section: "*.tif"
+steps:
+  spots:
+    apply: threshold
+    to: section
+    method: fixed
+    level: 100
+  stats:
+    apply: measure
+    to: spots
+    connectivity: 8
+limits:
+  fraction:
+    value: stats.area_fraction
+    max: {max_fraction}
+  mean-fraction:
+    value: stats.area_fraction
+    over: lot-mean
+    range: [0.001, 0.05]
+"""
+
+
+@dataclass(frozen=True)
+class PostgresServer:
+    """A running throw-away cluster: its socket folder and port."""
+
+    socket_dir: Path
+    port: int
+    bindir: Path
+
+    def url(self, database: str) -> str:
+        return f"postgresql+psycopg://postgres@/{database}?host={self.socket_dir}&port={self.port}"
+
+    def admin(self, sql: str, database: str = "postgres") -> None:
+        """Run one statement as the superuser, outside a transaction (CREATE/DROP DATABASE)."""
+        import psycopg
+
+        with psycopg.connect(
+            host=str(self.socket_dir),
+            port=self.port,
+            user="postgres",
+            dbname=database,
+            autocommit=True,
+        ) as connection:
+            connection.execute(sql)
+
+
+def _server_bindir() -> Path | None:
+    import glob
+
+    def version(path: str) -> tuple[int, ...]:
+        part = Path(path).parent.name
+        return tuple(int(p) for p in part.split(".") if p.isdigit())
+
+    for folder in sorted(glob.glob(PG_GLOB), key=version, reverse=True):
+        bindir = Path(folder)
+        if (bindir / "initdb").is_file() and (bindir / "pg_ctl").is_file():
+            return bindir
+    return None
+
+
+def _free_port() -> int:
+    # the port only names the socket file (.s.PGSQL.PORT); a free TCP port keeps it unique
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
+        probe.bind(("127.0.0.1", 0))
+        return int(probe.getsockname()[1])
+
+
+def _missing(message: str) -> None:
+    if os.environ.get("CI"):
+        pytest.fail(f"{message}; CI must run the PostgreSQL tests (.ci/run installs postgresql)")
+    pytest.skip(message)
+
+
+@pytest.fixture(scope="session")
+def postgres_server() -> Iterator[PostgresServer]:
+    bindir = _server_bindir()
+    if bindir is None:
+        _missing(f"no PostgreSQL server binaries in {PG_GLOB} (Debian: apt-get install postgresql)")
+    assert bindir is not None
+    as_user: list[str] = []
+    owner: pwd.struct_passwd | None = None
+    if os.geteuid() == 0:  # initdb and postgres refuse to run as root
+        try:
+            owner = pwd.getpwnam("postgres")
+        except KeyError:
+            _missing("running as root and there is no 'postgres' user to run the server as")
+        as_user = ["runuser", "-u", "postgres", "--"]
+    base = Path(tempfile.mkdtemp(prefix="lotproof-pg-"))
+    data, sockets, log = base / "data", base / "sock", base / "server.log"
+    sockets.mkdir()
+    if owner is not None:
+        for path in (base, sockets):
+            os.chown(path, owner.pw_uid, owner.pw_gid)
+    port = _free_port()
+
+    def run(*command: str) -> None:
+        subprocess.run([*as_user, *command], check=True, capture_output=True, timeout=300)
+
+    started = False
+    try:
+        run(
+            str(bindir / "initdb"),
+            "-D",
+            str(data),
+            "-U",
+            "postgres",
+            "-A",
+            "trust",
+            "-E",
+            "UTF8",
+            "--locale=C",
+            "--no-sync",
+        )
+        options = f"-k {sockets} -p {port} -c listen_addresses='' -c fsync=off"
+        run(str(bindir / "pg_ctl"), "-D", str(data), "-o", options, "-l", str(log), "-w", "start")
+        started = True
+        yield PostgresServer(sockets, port, bindir)
+    except subprocess.CalledProcessError as err:
+        text = (err.stderr or b"").decode(errors="replace")
+        if log.exists():
+            text += log.read_text(errors="replace")
+        pytest.fail(f"the PostgreSQL test server did not start: {text.strip()}")
+    finally:
+        if started:
+            subprocess.run(
+                [*as_user, str(bindir / "pg_ctl"), "-D", str(data), "-m", "immediate", "-w", "stop"],
+                capture_output=True,
+                timeout=120,
+            )
+        shutil.rmtree(base, ignore_errors=True)
+
+
+_numbers = itertools.count(1)
+
+
+@pytest.fixture
+def postgres_database(postgres_server: PostgresServer) -> Iterator[str]:
+    """A new, empty database on the test server; its URL."""
+    name = f"catalogue_{os.getpid()}_{next(_numbers)}"
+    postgres_server.admin(f'CREATE DATABASE "{name}"')
+    yield postgres_server.url(name)
+    postgres_server.admin(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+
+
+@pytest.fixture(params=["sqlite", "postgresql"])
+def catalogue_url(request: pytest.FixtureRequest, tmp_path: Path) -> str:
+    """The URL of a new catalogue: an SQLite file, then a PostgreSQL database."""
+    if request.param == "sqlite":
+        return f"sqlite:///{tmp_path / 'catalogue' / 'history.sqlite'}"
+    return str(request.getfixturevalue("postgres_database"))
+
+
+# ---------------------------------------------------------------- small lots and recipes
+
+
+def spot_image(n_spots: int, size: int = 64) -> np.ndarray:
+    """A uint8 image with ``n_spots`` bright 4x4 squares (16 px each) on a dark field."""
+    image = np.full((size, size), 20, np.uint8)
+    for i in range(n_spots):
+        y, x = 8 + 16 * (i // 3), 8 + 16 * (i % 3)
+        image[y : y + 4, x : x + 4] = 200
+    return image
+
+
+def make_lot(folder: Path, name: str, spots: list[int]) -> Path:
+    """A lot folder ``folder/name`` with one image per entry of ``spots``."""
+    lot = folder / name
+    lot.mkdir(parents=True)
+    for i, n in enumerate(spots):
+        tifffile.imwrite(lot / f"disc-{i:02d}.tif", spot_image(n))
+    return lot
+
+
+def make_recipe(
+    folder: Path, *, name: str = "spot-test", revision: int = 1, max_fraction: float = 0.05
+) -> Path:
+    folder.mkdir(parents=True, exist_ok=True)
+    path = folder / f"{name}-r{revision}.yaml"
+    path.write_text(RECIPE.format(name=name, revision=revision, max_fraction=max_fraction))
+    return path
