@@ -92,6 +92,7 @@ def run_recipe(
     executor_kind: str = "local",
     scheduler: str | None = None,
     workers: int | None = None,
+    db: str | None = None,
 ) -> int:
     from lotproof.runner.jobs.run import usable_cores
 
@@ -122,6 +123,7 @@ def run_recipe(
                     err_console,
                     documents,
                     codes,
+                    db,
                 )
     except ExecutorError as err:
         raise click.UsageError(str(err)) from None
@@ -146,6 +148,7 @@ def _run_one(
     err_console: Console,
     documents: list[Any],
     codes: list[int],
+    db: str | None = None,
 ) -> None:
 
     progress = None
@@ -207,10 +210,14 @@ def _run_one(
             sign=sign,
             on_start=started,
             on_image=done,
+            db=db,
         )
     finally:
         if progress is not None:
             progress.stop()
+    if not quiet:
+        for note in summary.notes:
+            err_console.print(Text(f"note: {note}", style="yellow"))
     if as_json:
         documents.append(summary.as_json())
     else:
@@ -269,6 +276,12 @@ def _run_one(
     default=None,
     help="worker processes for --executor dask-local [default: usable cores]",
 )
+@click.option(
+    "--db",
+    default=None,
+    metavar="URL",
+    help="the catalogue that records the run [default: $LOTPROOF_DB or OUT/history.sqlite]",
+)
 @click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
 @click.option("--quiet", "-q", is_flag=True, help="no progress or messages on stderr")
 def run(
@@ -282,10 +295,13 @@ def run(
     executor_kind: str,
     scheduler: str | None,
     workers: int | None,
+    db: str | None,
     as_json: bool,
     quiet: bool,
 ) -> None:
     """Run RECIPE on each LOT folder; write a new run folder per lot under --out.
+
+    Each finished run is recorded in the catalogue of runs (`lotproof history`).
 
     Exit 0 when every limit passed, 1 when a limit failed, 3 when an image could not
     be analysed (the lot is incomplete), 2 when the recipe is invalid.
@@ -304,6 +320,7 @@ def run(
             executor_kind=executor_kind,
             scheduler=scheduler,
             workers=workers,
+            db=db,
         )
     )
 
