@@ -494,13 +494,19 @@ def demo(name: str | None, out: Path | None, as_json: bool) -> None:
     """Run the bundled demo lots through their recipes: every scenario, or NAME.
 
     filter-disc: sintered bronze filter discs (porosity); powder: metal powder (size
-    distribution, touching particles); lattice: CT volumes of lattice coupons (gas voids).
+    distribution, touching particles); lattice: CT volumes of lattice coupons (gas voids);
+    history: 32 generated lots into one catalogue, with `history` and `trend`.
     Exits 0 when the demos ran, whatever their verdicts.
     """
 
     names = [name] if name else list(SCENARIOS)
     for scenario in names:
         recipe, lot, default_out = demo_paths(scenario)
+        if SCENARIOS[scenario].kind == "history":
+            from lotproof.runner.cli.history import history_demo
+
+            history_demo(out / scenario if out else default_out, as_json)
+            continue
         if not as_json:
             stderr().print(Text(f"demo {scenario}: {SCENARIOS[scenario].summary}", style="bold"))
         code = run_recipe(recipe, (lot,), out or default_out, as_json, quiet=False, no_cache=True)

@@ -210,7 +210,9 @@ class Catalogue:
             raise
         except (SQLAlchemyError, OSError) as err:
             self._engine.dispose()
-            raise CatalogueError(f"{self.shown}: cannot open the catalogue ({_short(err)})") from None
+            raise CatalogueError(
+                f"{self.shown}: cannot open the catalogue ({_short(err)})"
+            ) from None
 
     def __enter__(self) -> Catalogue:
         return self
@@ -230,7 +232,9 @@ class Catalogue:
             with self._engine.connect() as connection, connection.begin():
                 yield connection
         except SQLAlchemyError as err:
-            raise CatalogueError(f"{self.shown}: cannot read the catalogue ({_short(err)})") from None
+            raise CatalogueError(
+                f"{self.shown}: cannot read the catalogue ({_short(err)})"
+            ) from None
 
     @contextmanager
     def _writing(self) -> Iterator[Connection]:

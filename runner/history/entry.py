@@ -49,7 +49,9 @@ __all__ = [
 LOT_DETAILS = ("customer", "order", "specification", "operator")
 
 #: ``STEP.NAME [UNIT]``: a value column of images.csv
-_VALUE_COLUMN = re.compile(r"^(?P<step>[A-Za-z][A-Za-z0-9_-]*)\.(?P<name>[A-Za-z0-9_]+) \[(?P<unit>[^\]]*)\]$")
+_VALUE_COLUMN = re.compile(
+    r"^(?P<step>[A-Za-z][A-Za-z0-9_-]*)\.(?P<name>[A-Za-z0-9_]+) \[(?P<unit>[^\]]*)\]$"
+)
 _PIXEL_COLUMN = "pixel_size [um]"
 #: the longest problem text kept per run (the folder itself has the rest: `lotproof verify`)
 _PROBLEM_CHARS = 500
@@ -184,7 +186,9 @@ def _describe(record: RunRecord, events: list[dict[str, Any]]) -> None:
     end = first.get("run-end", {})
     record.recipe_name = _text(recipe.get("name"))
     revision = recipe.get("revision")
-    record.recipe_revision = revision if isinstance(revision, int) and not isinstance(revision, bool) else None
+    record.recipe_revision = (
+        revision if isinstance(revision, int) and not isinstance(revision, bool) else None
+    )
     record.recipe_sha256 = _text(recipe.get("sha256"))
     git = recipe.get("git")
     if isinstance(git, dict):
@@ -299,7 +303,9 @@ def _read_intact(folder: RunFolder, record: RunRecord) -> RunEntry:
     seen: set[str] = set()
     for row in rows:
         if len(row) != len(header):
-            raise ValueError(f"{IMAGES_FILE}: a row of {len(row)} cells under {len(header)} columns")
+            raise ValueError(
+                f"{IMAGES_FILE}: a row of {len(row)} cells under {len(header)} columns"
+            )
         image = row[position["image"]]
         if image in seen:
             raise ValueError(f"{IMAGES_FILE}: image {image!r} twice")

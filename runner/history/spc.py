@@ -25,6 +25,7 @@ References
 
 from __future__ import annotations
 
+import itertools
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -127,7 +128,7 @@ def b4(n: int) -> float:
 
 def moving_ranges(values: Sequence[float]) -> list[float]:
     """|x_i - x_(i-1)| for i = 2..n: the moving ranges of two successive values (n - 1 of them)."""
-    return [abs(b - a) for a, b in zip(values[:-1], values[1:])]
+    return [abs(b - a) for a, b in itertools.pairwise(values)]
 
 
 @dataclass(frozen=True)
@@ -170,7 +171,9 @@ def individuals_limits(baseline: Sequence[float]) -> IndividualsLimits:
     [NIST]_ 6.3.2.2 (individuals control charts), [MONT]_ section 6.4, [ASTM]_.
     """
     if len(baseline) < 2:
-        raise ValueError(f"an individuals chart needs at least 2 baseline values (got {len(baseline)})")
+        raise ValueError(
+            f"an individuals chart needs at least 2 baseline values (got {len(baseline)})"
+        )
     center = mean(baseline)
     mr_bar = mean(moving_ranges(baseline))
     sigma = mr_bar / D2_MOVING_RANGE

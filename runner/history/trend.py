@@ -40,6 +40,7 @@ The summary's top-level centre, limits and indices are those of the last segment
 from __future__ import annotations
 
 import fnmatch
+import itertools
 import math
 import re
 from dataclasses import dataclass, field
@@ -62,6 +63,7 @@ from lotproof.runner.history.spc import (
     subgroup_limits,
     zone_rules,
 )
+from lotproof.runner.record.folder import CAUTION
 
 __all__ = [
     "DEFAULT_BASELINE",
@@ -298,6 +300,7 @@ class Trend:
             "excluded": [e.as_dict() for e in self.excluded],
             "flags": dict(FLAG_CODES),
             "notes": list(self.notes),
+            "caution": CAUTION,
         }
         return _no_nan(document)
 
@@ -399,7 +402,9 @@ def lot_trend(
         raise TrendError(f"--baseline must be at least 2 lots (got {baseline})")
     match = _VALUE.match(value)
     if not match:
-        raise TrendError(f"--value {value!r}: write the value as STEP.NAME, e.g. pore-stats.area_fraction")
+        raise TrendError(
+            f"--value {value!r}: write the value as STEP.NAME, e.g. pore-stats.area_fraction"
+        )
     step, name = match["step"], match["name"]
     runs = catalogue.runs(recipe=recipe)
     if lot is not None:
@@ -440,7 +445,9 @@ def lot_trend(
         )
     unit = units[-1]
     if len(units) > 1:
-        notes.append(f"{value} is recorded in more than one unit ({', '.join(units)}); {unit} is charted")
+        notes.append(
+            f"{value} is recorded in more than one unit ({', '.join(units)}); {unit} is charted"
+        )
 
     by_lot: dict[str, list[RunRecord]] = {}
     for run in intact:
@@ -475,7 +482,11 @@ def lot_trend(
         if not good:
             excluded.append(
                 Excluded(
-                    run.run_name, run.run_dir, lot_name, "no value", f"no analysed image gave {value}"
+                    run.run_name,
+                    run.run_dir,
+                    lot_name,
+                    "no value",
+                    f"no analysed image gave {value}",
                 )
             )
             continue
@@ -501,7 +512,7 @@ def lot_trend(
             + ", ".join(f"r{r}" for r in sorted({p.revision or 0 for p in points}))
             + " (--across-revisions)"
         )
-    for before, after in zip(segments[:-1], segments[1:]):
+    for before, after in itertools.pairwise(segments):
         if not across_revisions:
             first = after.points[0]
             notes.append(
@@ -599,7 +610,9 @@ def _analyse(
     limits = individuals_limits(base_values)
     segment.limits = limits
     segment.sigma_overall = sample_sd(base_values)
-    for point, flags in zip(points, zone_rules([p.value for p in points], limits.center, limits.sigma_within)):
+    for point, flags in zip(
+        points, zone_rules([p.value for p in points], limits.center, limits.sigma_within)
+    ):
         point.flags = list(flags)
         if point.mr is not None and point.mr > limits.mr_ucl:
             point.flags.append("MR")

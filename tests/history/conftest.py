@@ -163,7 +163,16 @@ def postgres_server() -> Iterator[PostgresServer]:
     finally:
         if started:
             subprocess.run(
-                [*as_user, str(bindir / "pg_ctl"), "-D", str(data), "-m", "immediate", "-w", "stop"],
+                [
+                    *as_user,
+                    str(bindir / "pg_ctl"),
+                    "-D",
+                    str(data),
+                    "-m",
+                    "immediate",
+                    "-w",
+                    "stop",
+                ],
                 capture_output=True,
                 timeout=120,
             )
