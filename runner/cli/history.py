@@ -24,7 +24,12 @@ from rich.table import Table as RichTable
 from rich.text import Text
 
 from lotproof.runner.cli.console import emit_json, mark, stderr, stdout
-from lotproof.runner.history.catalogue import Catalogue, catalogue_url, rebuild
+from lotproof.runner.history.catalogue import (
+    Catalogue,
+    NoCatalogueError,
+    catalogue_url,
+    rebuild,
+)
 from lotproof.runner.history.listing import Listed, csv_rows, list_runs
 from lotproof.runner.history.trend import FLAG_CODES, Trend, lot_trend
 from lotproof.runner.record.folder import CAUTION
@@ -164,6 +169,9 @@ def history(
     url = _url(runs, db)
     if rebuild_runs:
         folders = runs or (_DEFAULT_RUNS,)
+        for folder in folders:  # before the catalogue (which may live there) is made
+            if not folder.is_dir():
+                raise NoCatalogueError(f"{folder}: not a folder of run folders")
         with Catalogue(url) as catalogue:
             report = rebuild(catalogue, folders)
         if as_json:

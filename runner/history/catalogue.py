@@ -191,6 +191,13 @@ class Catalogue:
                 f"{path}: no catalogue here; `lotproof history --rebuild RUNS` builds one from "
                 "the run folders"
             )
+        if path is not None and not must_exist:
+            try:
+                path.parent.mkdir(parents=True, exist_ok=True)
+            except OSError as err:
+                raise CatalogueError(
+                    f"{path.parent}: cannot make the folder ({err.strerror})"
+                ) from None
         timeout = BUSY_TIMEOUT_S if busy_timeout is None else busy_timeout
         try:
             backend = make_url(url).get_backend_name()

@@ -39,6 +39,7 @@ __all__ = [
     "TREND_PAGE",
     "TREND_VALUE",
     "HistoryDemo",
+    "lot_generator",
     "run_history_demo",
 ]
 
@@ -63,7 +64,8 @@ class HistoryDemo:
     page: Path | None = None
 
 
-def _generator(root: Path) -> ModuleType:
+def lot_generator(root: Path) -> ModuleType:
+    """The lot generator module (``demo_run/history/generate.py`` under ``root``), loaded."""
     path = root / GENERATOR
     spec = importlib.util.spec_from_file_location("lotproof_history_demo_lots", path)
     if spec is None or spec.loader is None or not path.is_file():
@@ -104,7 +106,7 @@ def run_history_demo(
                 f"the history demo needs {relative} beside the package (looked in {root})"
             )
         recipes[revision] = load_recipe(root / relative)
-    lots = _generator(root).write_lots(out / "lots")
+    lots = lot_generator(root).write_lots(out / "lots")
     url = catalogue_url(out, db)
     demo = HistoryDemo(out=out, catalogue=url)
     executor = LocalExecutor(1)  # small images: one process beats starting a pool per lot

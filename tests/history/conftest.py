@@ -227,3 +227,66 @@ def make_recipe(
     path = folder / f"{name}-r{revision}.yaml"
     path.write_text(RECIPE.format(name=name, revision=revision, max_fraction=max_fraction))
     return path
+
+
+# ---------------------------------------------------------------- runs shared by the tests
+
+#: spots per image of each lot (area fraction of an image = spots * 16 / 4096 = spots / 256),
+#: with the recipe revision each lot is run with, in the order they are run
+LOT_PLAN = (
+    ("L-01", 1, [2, 2, 3]),
+    ("L-02", 1, [2, 3, 3]),
+    ("L-03", 1, [3, 3, 2]),
+    ("L-04", 1, [2, 2, 2]),
+    ("L-05", 2, [3, 3, 3]),
+    ("L-06", 2, [3, 4, 3]),
+    ("L-07", 2, [4, 3, 3]),
+    ("L-08", 2, [3, 3, 4]),
+    ("L-09", 2, [8, 9, 9]),
+    ("L-10", 2, [3, 3, 3]),
+)
+#: a lot run again, later, with the same revision: its latest run counts
+RERUN_LOT = "L-04"
+#: a lot whose images exceed the per-image limit of revision 2 (max 0.03: 9/256 = 0.035)
+FAILING_LOT = "L-09"
+
+
+@dataclass
+class LotRuns:
+    """Run folders made once for the session: ``out`` with its own (incremental) catalogue."""
+
+    root: Path
+    out: Path
+    recipes: dict[int, Path]
+    lots: dict[str, Path]
+    #: run folder of each run, in the order run
+    runs: list[Path]
+
+    @property
+    def incremental_url(self) -> str:
+        return f"sqlite:///{self.out / 'history.sqlite'}"
+
+
+@pytest.fixture(scope="session")
+def lot_runs(tmp_path_factory: pytest.TempPathFactory) -> LotRuns:
+    from lotproof import load_recipe, run_lot
+    from lotproof.runner.lot.local import LocalExecutor
+
+    root = tmp_path_factory.mktemp("lot-runs")
+    recipes = {
+        1: make_recipe(root / "recipes", revision=1, max_fraction=0.05),
+        2: make_recipe(root / "recipes", revision=2, max_fraction=0.03),
+    }
+    loaded = {revision: load_recipe(path) for revision, path in recipes.items()}
+    out = root / "runs"
+    executor = LocalExecutor(1)
+    lots: dict[str, Path] = {}
+    runs: list[Path] = []
+    for name, revision, spots in LOT_PLAN:
+        lots[name] = make_lot(root / "lots", name, spots)
+        summary = run_lot(loaded[revision], lots[name], out, executor=executor)
+        assert summary.catalogue is not None and summary.notes == []
+        runs.append(summary.run_dir)
+    summary = run_lot(loaded[1], lots[RERUN_LOT], out, executor=executor)
+    runs.append(summary.run_dir)
+    return LotRuns(root, out, recipes, lots, runs)
