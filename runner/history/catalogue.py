@@ -208,7 +208,12 @@ class Catalogue:
                 _configure_sqlite(self._engine)
             else:
                 self._engine = create_engine(url, poolclass=NullPool)
-        except (ArgumentError, SQLAlchemyError, ImportError, ValueError) as err:
+        except ImportError as err:
+            raise CatalogueError(
+                f"{self.shown}: the database driver is not installed ({err}); "
+                "`pip install lotproof[postgres]` adds PostgreSQL's"
+            ) from None
+        except (ArgumentError, SQLAlchemyError, ValueError) as err:
             raise CatalogueError(f"{self.shown}: not a catalogue URL ({_short(err)})") from None
         try:
             self.migrate()

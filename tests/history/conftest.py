@@ -22,66 +22,12 @@ import socket
 import subprocess
 import tempfile
 from collections.abc import Iterator
-from dataclasses import dataclass
 from pathlib import Path
 
-import numpy as np
 import pytest
-import tifffile
+from history_support import LOT_PLAN, RERUN_LOT, LotRuns, PostgresServer, make_lot, make_recipe
 
 PG_GLOB = "/usr/lib/postgresql/*/bin"
-
-RECIPE = """\
-format: lotproof/1
-name: {name}
-revision: {revision}
-pixel_size: 0.5 um
-inputs:
-  section: "*.tif"
-steps:
-  spots:
-    apply: threshold
-    to: section
-    method: fixed
-    level: 100
-  stats:
-    apply: measure
-    to: spots
-    connectivity: 8
-limits:
-  fraction:
-    value: stats.area_fraction
-    max: {max_fraction}
-  mean-fraction:
-    value: stats.area_fraction
-    over: lot-mean
-    range: [0.001, 0.05]
-"""
-
-
-@dataclass(frozen=True)
-class PostgresServer:
-    """A running throw-away cluster: its socket folder and port."""
-
-    socket_dir: Path
-    port: int
-    bindir: Path
-
-    def url(self, database: str) -> str:
-        return f"postgresql+psycopg://postgres@/{database}?host={self.socket_dir}&port={self.port}"
-
-    def admin(self, sql: str, database: str = "postgres") -> None:
-        """Run one statement as the superuser, outside a transaction (CREATE/DROP DATABASE)."""
-        import psycopg
-
-        with psycopg.connect(
-            host=str(self.socket_dir),
-            port=self.port,
-            user="postgres",
-            dbname=database,
-            autocommit=True,
-        ) as connection:
-            connection.execute(sql)
 
 
 def _server_bindir() -> Path | None:
@@ -197,74 +143,6 @@ def catalogue_url(request: pytest.FixtureRequest, tmp_path: Path) -> str:
     if request.param == "sqlite":
         return f"sqlite:///{tmp_path / 'catalogue' / 'history.sqlite'}"
     return str(request.getfixturevalue("postgres_database"))
-
-
-# ---------------------------------------------------------------- small lots and recipes
-
-
-def spot_image(n_spots: int, size: int = 64) -> np.ndarray:
-    """A uint8 image with ``n_spots`` bright 4x4 squares (16 px each) on a dark field."""
-    image = np.full((size, size), 20, np.uint8)
-    for i in range(n_spots):
-        y, x = 8 + 16 * (i // 3), 8 + 16 * (i % 3)
-        image[y : y + 4, x : x + 4] = 200
-    return image
-
-
-def make_lot(folder: Path, name: str, spots: list[int]) -> Path:
-    """A lot folder ``folder/name`` with one image per entry of ``spots``."""
-    lot = folder / name
-    lot.mkdir(parents=True)
-    for i, n in enumerate(spots):
-        tifffile.imwrite(lot / f"disc-{i:02d}.tif", spot_image(n))
-    return lot
-
-
-def make_recipe(
-    folder: Path, *, name: str = "spot-test", revision: int = 1, max_fraction: float = 0.05
-) -> Path:
-    folder.mkdir(parents=True, exist_ok=True)
-    path = folder / f"{name}-r{revision}.yaml"
-    path.write_text(RECIPE.format(name=name, revision=revision, max_fraction=max_fraction))
-    return path
-
-
-# ---------------------------------------------------------------- runs shared by the tests
-
-#: spots per image of each lot (area fraction of an image = spots * 16 / 4096 = spots / 256),
-#: with the recipe revision each lot is run with, in the order they are run
-LOT_PLAN = (
-    ("L-01", 1, [2, 2, 3]),
-    ("L-02", 1, [2, 3, 3]),
-    ("L-03", 1, [3, 3, 2]),
-    ("L-04", 1, [2, 2, 2]),
-    ("L-05", 2, [3, 3, 3]),
-    ("L-06", 2, [3, 4, 3]),
-    ("L-07", 2, [4, 3, 3]),
-    ("L-08", 2, [3, 3, 4]),
-    ("L-09", 2, [8, 9, 9]),
-    ("L-10", 2, [3, 3, 3]),
-)
-#: a lot run again, later, with the same revision: its latest run counts
-RERUN_LOT = "L-04"
-#: a lot whose images exceed the per-image limit of revision 2 (max 0.03: 9/256 = 0.035)
-FAILING_LOT = "L-09"
-
-
-@dataclass
-class LotRuns:
-    """Run folders made once for the session: ``out`` with its own (incremental) catalogue."""
-
-    root: Path
-    out: Path
-    recipes: dict[int, Path]
-    lots: dict[str, Path]
-    #: run folder of each run, in the order run
-    runs: list[Path]
-
-    @property
-    def incremental_url(self) -> str:
-        return f"sqlite:///{self.out / 'history.sqlite'}"
 
 
 @pytest.fixture(scope="session")

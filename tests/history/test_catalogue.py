@@ -16,7 +16,7 @@ import time
 from pathlib import Path
 
 import pytest
-from conftest import LOT_PLAN, RERUN_LOT, LotRuns, make_lot, make_recipe
+from history_support import LOT_PLAN, RERUN_LOT, LotRuns, make_lot, make_recipe
 from sqlalchemy import create_engine, insert, text
 from sqlalchemy.pool import NullPool
 

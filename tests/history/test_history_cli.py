@@ -9,7 +9,7 @@ from datetime import timedelta
 from pathlib import Path
 
 import pytest
-from conftest import FAILING_LOT, LOT_PLAN, RERUN_LOT, LotRuns
+from history_support import FAILING_LOT, LOT_PLAN, RERUN_LOT, LotRuns
 
 from lotproof.runner.cli.main import main
 from lotproof.runner.errors import EXIT_INVALID, EXIT_OK

@@ -18,7 +18,7 @@ from urllib.parse import unquote
 import numpy as np
 import pytest
 import tifffile
-from conftest import FAILING_LOT, LOT_PLAN, RERUN_LOT, LotRuns, make_lot
+from history_support import FAILING_LOT, LOT_PLAN, RERUN_LOT, LotRuns, make_lot
 
 from lotproof import load_recipe, run_lot
 from lotproof.runner.cli.main import main
