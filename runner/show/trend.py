@@ -297,6 +297,8 @@ def _subgroup_chart(trend: Trend) -> bytes:
     bottom.set_xlabel("lot, in the order first run (shaded: baseline)")
     x = [p.index for p in trend.points]
     bottom.set_xlim(min(x) - 0.7, max(x) + 1.8)
+    bottom.set_xticks(x if len(x) <= 40 else x[:: max(1, len(x) // 20)])
+    bottom.tick_params(axis="x", labelsize=6.5)
     bottom.set_ylim(bottom=0)
     return _svg(fig)
 

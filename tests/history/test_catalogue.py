@@ -294,6 +294,48 @@ def test_two_writers_at_once_both_land(
     assert len(dump["images"]) == 24 * 3
 
 
+_OPENER = """
+import sys, time
+from pathlib import Path
+from lotproof.runner.history.catalogue import Catalogue
+url, ready, go = sys.argv[1:]
+Path(ready).touch()
+while not Path(go).exists():
+    time.sleep(0.005)
+with Catalogue(url) as catalogue:
+    print(catalogue.migrate())
+"""
+
+
+def test_a_new_catalogue_opened_by_three_processes_at_once(
+    catalogue_url: str, tmp_path: Path
+) -> None:
+    # They race to make the schema; each makes it or finds it made, none fails.
+    go = tmp_path / "go"
+    procs = []
+    for n in range(3):
+        ready = tmp_path / f"ready-{n}"
+        proc = subprocess.Popen(
+            [sys.executable, "-c", _OPENER, catalogue_url, str(ready), str(go)],
+            stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE,
+        )
+        procs.append((ready, proc))
+    for ready, proc in procs:
+        while not ready.exists():
+            assert proc.poll() is None, proc.stderr.read().decode() if proc.stderr else ""
+            time.sleep(0.01)
+    go.touch()
+    for _, proc in procs:
+        out, err = proc.communicate(timeout=300)
+        assert proc.returncode == 0, err.decode()
+        assert out.decode().strip() == str(SCHEMA_VERSION)
+    with Catalogue(catalogue_url) as catalogue:
+        assert catalogue.dump()["schema_version"] == [
+            (1, "runs, limits, images and per-image values")
+        ]
+
+
 def test_two_runs_finishing_at_once_both_land(catalogue_url: str, tmp_path: Path) -> None:
     recipe = make_recipe(tmp_path / "recipes")
     lots = [make_lot(tmp_path / "lots", f"CD-{i}", [1, 2]) for i in (1, 2)]
