@@ -8,6 +8,9 @@ of truth: everything in the catalogue can be rebuilt from run folders.
 
 Modules, in the order data flows: :mod:`.entry` (a run folder read into one
 catalogue entry), :mod:`.schema` (tables and migrations), :mod:`.catalogue`
-(opening, recording, rebuilding, querying), :mod:`.spc` (the statistics, pure
-functions), :mod:`.trend` (one point per lot, charts and capability).
+(which database, opening, recording, rebuilding, querying), :mod:`.listing` (the
+lot history: runs by filters, with key values), :mod:`.spc` (the statistics, pure
+functions), :mod:`.trend` (one point per lot, charts and capability). The trend
+page is :mod:`lotproof.runner.show.trend`; the commands are
+:mod:`lotproof.runner.cli.history`.
 """

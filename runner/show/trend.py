@@ -348,9 +348,26 @@ def build_trend_page(trend: Trend, page: Path, *, catalogue: str) -> bytes:
     import matplotlib
 
     with matplotlib.rc_context():
-        charts = [("individuals and moving range", _svg_uri(_individuals_chart(trend)))]
+        charts = [
+            (
+                "individuals and moving range",
+                _svg_uri(_individuals_chart(trend)),
+                "one point per lot; circled points are flagged by the zone rules or the "
+                "moving-range chart.",
+            )
+        ]
         if trend.has_subgroups:
-            charts.append(("x-bar and s", _svg_uri(_subgroup_chart(trend))))
+            charts.append(
+                (
+                    "x-bar and s",
+                    _svg_uri(_subgroup_chart(trend)),
+                    "the images of each lot as one subgroup; the limits step with each lot's "
+                    "number of images, and squares mark a lot beyond them. These limits come "
+                    "from the variation between images within a lot: when lots differ from "
+                    "each other more than that, lot means fall outside them while the process "
+                    "is stable, and the individuals chart is the one to judge lots by.",
+                )
+            )
     segments = []
     for segment in trend.segments:
         lim, ind = segment.limits, segment.indices
