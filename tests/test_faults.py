@@ -70,6 +70,11 @@ def world(tmp_path_factory: pytest.TempPathFactory) -> dict[str, object]:
     return {"root": root, "lot": lot, "recipe": recipe, "files": files, "code": reference.exit_code}
 
 
+def _run_folders(out: Path) -> list[Path]:
+    """The run folders in ``out`` (beside them lies the catalogue, history.sqlite)."""
+    return sorted(p for p in out.iterdir() if p.is_dir()) if out.exists() else []
+
+
 def _stable_files(run: Path) -> dict[str, bytes]:
     figures = [
         p.relative_to(run).as_posix()
@@ -210,7 +215,7 @@ def test_a_run_killed_at_an_io_point(
     killed = _killed_run(world, tmp_path, point, when)
     assert killed.returncode == -signal.SIGKILL, killed.stderr.decode()
     cached = _assert_cache_whole(tmp_path / "cache")
-    runs = list((tmp_path / "runs").iterdir()) if (tmp_path / "runs").exists() else []
+    runs = _run_folders(tmp_path / "runs")
     assert len(runs) <= 1
     # The last I/O point is the fsync of the ledger's run-end line: killed there, the
     # line is written and the record is whole. Killed anywhere before, it is unfinished.
@@ -220,7 +225,7 @@ def test_a_run_killed_at_an_io_point(
     if fraction == 1.0:  # killed at the very end: every image was analysed and cached
         assert len(cached) == IMAGES * STEPS and len(runs) == 1
     _next_run_completes(world, tmp_path / "cache", tmp_path / "runs", cached)
-    assert len(list((tmp_path / "runs").iterdir())) == len(runs) + 1
+    assert len(_run_folders(tmp_path / "runs")) == len(runs) + 1
     for run in runs:  # the next run did not touch the killed run's folder
         assert verify_run(run).status == status
 
@@ -252,7 +257,7 @@ def test_a_run_with_workers_killed_from_outside(
         os.killpg(proc.pid, signal.SIGKILL)  # the run and its worker processes
     proc.wait(timeout=60)
     cached = _assert_cache_whole(tmp_path / "cache")
-    runs = list((tmp_path / "runs").iterdir()) if (tmp_path / "runs").exists() else []
+    runs = _run_folders(tmp_path / "runs")
     for run in runs:
         if proc.returncode != -signal.SIGKILL:
             assert verify_run(run).status == "intact"  # it finished before the kill
@@ -306,7 +311,7 @@ def test_damaged_cache_entries_are_found_and_recomputed(
     for path in (flipped, cut, swapped, emptied):
         assert f"cache entry {path}" in err and "recomputing" in err, err
     assert "hash mismatch" in err
-    runs = sorted(out.iterdir())
+    runs = _run_folders(out)
     assert len(runs) == 2 and verify_run(runs[-1]).status == "intact"
     assert _stable_files(runs[-1]) == world["files"]
     store = DiskStore(cache)
@@ -397,7 +402,7 @@ def test_a_full_disk_under_the_run_folder_is_a_clear_error(
     assert "Traceback" not in captured.err and "internal error" not in captured.err
     assert "No space left on device" in captured.err and "error:" in captured.err
     assert "seal:" not in captured.out  # a sealed run is announced only when it is whole
-    for run in (tmp_path / "runs").iterdir():
+    for run in _run_folders(tmp_path / "runs"):
         assert verify_run(run).status == "unfinished"
 
 
@@ -417,7 +422,7 @@ def test_a_full_disk_under_the_cache_is_a_note_and_the_run_is_whole(
     assert "Traceback" not in captured.err
     notes = [row for row in captured.err.splitlines() if "cannot store results" in row]
     assert len(notes) == 1 and "No space left on device" in notes[0], captured.err
-    (run,) = list((tmp_path / "runs").iterdir())
+    (run,) = _run_folders(tmp_path / "runs")
     assert verify_run(run).status == "intact"
     assert _stable_files(run) == world["files"]
     _assert_cache_whole(tmp_path / "cache")
@@ -460,7 +465,7 @@ def test_two_runs_at_once_on_one_cache_and_one_output_folder(
     for _, err, returncode in outcomes:
         assert returncode == world["code"], err.decode()
         assert b"Traceback" not in err
-    runs = sorted((tmp_path / "runs").iterdir())
+    runs = _run_folders(tmp_path / "runs")
     assert len(runs) == 2  # distinct run folders, even when started in the same second
     for run in runs:
         assert verify_run(run).status == "intact"

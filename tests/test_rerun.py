@@ -169,7 +169,7 @@ def test_interrupted_run_is_unfinished(tmp_path: Path, monkeypatch: pytest.Monke
 
     with pytest.raises(KeyboardInterrupt):
         run_lot(recipe, lot, tmp_path / "runs", on_image=stop)
-    (run_dir,) = list((tmp_path / "runs").iterdir())
+    (run_dir,) = [p for p in (tmp_path / "runs").iterdir() if p.is_dir()]
     report = verify_run(run_dir)
     assert report.status == "unfinished"
     assert report.exit_code == EXIT_INTEGRITY

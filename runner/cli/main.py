@@ -17,7 +17,7 @@ import click
 from rich.text import Text
 
 from lotproof.runner import __version__
-from lotproof.runner.cli import method, record, runs, show
+from lotproof.runner.cli import history, method, record, runs, show
 from lotproof.runner.cli.console import stderr
 from lotproof.runner.errors import (
     EXIT_INTERNAL,
@@ -51,6 +51,8 @@ for _command in (
     record.compare,
     show.report,
     show.preview,
+    history.history,
+    history.trend,
 ):
     cli.add_command(_command)
 

@@ -92,6 +92,7 @@ def run_recipe(
     executor_kind: str = "local",
     scheduler: str | None = None,
     workers: int | None = None,
+    db: str | None = None,
 ) -> int:
     from lotproof.runner.jobs.run import usable_cores
 
@@ -122,6 +123,7 @@ def run_recipe(
                     err_console,
                     documents,
                     codes,
+                    db,
                 )
     except ExecutorError as err:
         raise click.UsageError(str(err)) from None
@@ -146,6 +148,7 @@ def _run_one(
     err_console: Console,
     documents: list[Any],
     codes: list[int],
+    db: str | None = None,
 ) -> None:
 
     progress = None
@@ -207,10 +210,14 @@ def _run_one(
             sign=sign,
             on_start=started,
             on_image=done,
+            db=db,
         )
     finally:
         if progress is not None:
             progress.stop()
+    if not quiet:
+        for note in summary.notes:
+            err_console.print(Text(f"note: {note}", style="yellow"))
     if as_json:
         documents.append(summary.as_json())
     else:
@@ -269,6 +276,12 @@ def _run_one(
     default=None,
     help="worker processes for --executor dask-local [default: usable cores]",
 )
+@click.option(
+    "--db",
+    default=None,
+    metavar="URL",
+    help="the catalogue that records the run [default: $LOTPROOF_DB or OUT/history.sqlite]",
+)
 @click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
 @click.option("--quiet", "-q", is_flag=True, help="no progress or messages on stderr")
 def run(
@@ -282,10 +295,13 @@ def run(
     executor_kind: str,
     scheduler: str | None,
     workers: int | None,
+    db: str | None,
     as_json: bool,
     quiet: bool,
 ) -> None:
     """Run RECIPE on each LOT folder; write a new run folder per lot under --out.
+
+    Each finished run is recorded in the catalogue of runs (`lotproof history`).
 
     Exit 0 when every limit passed, 1 when a limit failed, 3 when an image could not
     be analysed (the lot is incomplete), 2 when the recipe is invalid.
@@ -304,6 +320,7 @@ def run(
             executor_kind=executor_kind,
             scheduler=scheduler,
             workers=workers,
+            db=db,
         )
     )
 
@@ -477,13 +494,19 @@ def demo(name: str | None, out: Path | None, as_json: bool) -> None:
     """Run the bundled demo lots through their recipes: every scenario, or NAME.
 
     filter-disc: sintered bronze filter discs (porosity); powder: metal powder (size
-    distribution, touching particles); lattice: CT volumes of lattice coupons (gas voids).
+    distribution, touching particles); lattice: CT volumes of lattice coupons (gas voids);
+    history: 32 generated lots into one catalogue, with `history` and `trend`.
     Exits 0 when the demos ran, whatever their verdicts.
     """
 
     names = [name] if name else list(SCENARIOS)
     for scenario in names:
         recipe, lot, default_out = demo_paths(scenario)
+        if SCENARIOS[scenario].kind == "history":
+            from lotproof.runner.cli.history import history_demo
+
+            history_demo(out / scenario if out else default_out, as_json)
+            continue
         if not as_json:
             stderr().print(Text(f"demo {scenario}: {SCENARIOS[scenario].summary}", style="bold"))
         code = run_recipe(recipe, (lot,), out or default_out, as_json, quiet=False, no_cache=True)

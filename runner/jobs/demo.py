@@ -36,7 +36,9 @@ class Scenario:
     """One demo: a recipe, the lot it runs on, and where its run folders go.
 
     ``recipe``, ``lot`` and ``out`` are paths relative to the project root;
-    ``summary`` is one line for people.
+    ``summary`` is one line for people. ``kind`` is ``lot`` (run the recipe on the
+    lot) or ``history`` (:mod:`lotproof.runner.jobs.history_demo`: many generated
+    lots into one catalogue; ``lot`` is the folder of its generator).
     """
 
     name: str
@@ -44,6 +46,7 @@ class Scenario:
     lot: str
     out: str
     summary: str
+    kind: str = "lot"
 
 
 SCENARIOS: Mapping[str, Scenario] = MappingProxyType(
@@ -70,6 +73,15 @@ SCENARIOS: Mapping[str, Scenario] = MappingProxyType(
                 "demo_run/lattice/LC-2612",
                 DEMO_OUT,
                 "gas voids in additively made lattice struts, 3D CT volumes",
+            ),
+            Scenario(
+                "history",
+                "recipes/bearing-porosity.yaml",
+                "demo_run/history",
+                "demo_run/runs/history",
+                "32 lots of sintered bronze bearings over ten weeks, one method revision, "
+                "a drift: lot history, control charts, capability",
+                kind="history",
             ),
         )
     }

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import os
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -72,6 +72,10 @@ class RunSummary:
     cache_location: str = "none"
     seal: str | None = None
     signed: bool = False
+    #: the catalogue that recorded the run (password hidden), None when none did
+    catalogue: str | None = None
+    #: what people should know about the run beyond its verdicts (e.g. a catalogue miss)
+    notes: list[str] = field(default_factory=list)
 
     @property
     def exit_code(self) -> int:
@@ -102,6 +106,8 @@ class RunSummary:
             "signed": self.signed,
             "steps": self.step_counts(),
             "cache": self.cache_location,
+            "catalogue": self.catalogue,
+            "notes": list(self.notes),
             "exit_code": self.exit_code,
         }
 
@@ -191,6 +197,8 @@ def run_lot(
     samples: list[Sample] | None = None,
     on_start: Callable[[int], None] | None = None,
     on_image: Callable[[ImageResult], None] | None = None,
+    db: str | None = None,
+    catalogue: bool = True,
 ) -> RunSummary:
     """Run ``recipe`` on every image of ``lot`` and write a new run folder under ``out``.
 
@@ -199,6 +207,12 @@ def run_lot(
     Ed25519 key to sign the seal with. The run folder and its
     ledger are created before the first image is read, so an interrupted run leaves
     a folder that ``verify`` reports as unfinished.
+
+    The finished, sealed run is then recorded in the catalogue of runs (``db``, a
+    database URL; default ``$LOTPROOF_DB`` or ``OUT/history.sqlite``; ``catalogue=False``
+    records nothing). The catalogue is an index: when it cannot record the run,
+    the run stays complete and sealed, a note in the summary says so, and
+    ``lotproof history --rebuild OUT`` records it later.
 
     Raises
     ------
@@ -282,4 +296,29 @@ def run_lot(
     if sign is not None:
         write_signature(run_dir, seal, sign)
         summary.signed = True
+    if catalogue:
+        _record_in_catalogue(summary, Path(out), db)
     return summary
+
+
+def _record_in_catalogue(summary: RunSummary, out: Path, db: str | None) -> None:
+    """Record the sealed run in the catalogue; a failure becomes a note, never an error.
+
+    The run folder is the source of truth and is complete before this is called;
+    nothing here writes to it.
+    """
+    from lotproof.runner.history.catalogue import catalogue_url, record_run, shown_url
+
+    url: str | None = None
+    try:
+        url = catalogue_url(out, db)
+        record_run(summary.run_dir, url, expected_seal=summary.seal)
+    except Exception as err:  # the run is sealed; an index that missed it is rebuilt later
+        where = shown_url(url) if url else "the catalogue"
+        again = f"lotproof history --rebuild {out}" + (f" --db {where}" if db else "")
+        summary.notes.append(
+            f"{where} did not record this run ({err}); the run folder is complete and sealed, "
+            f"and `{again}` records it"
+        )
+        return
+    summary.catalogue = shown_url(url)
