@@ -167,6 +167,28 @@ HARDENING_ROWS = [
         ),
     ),
     (
+        "hostile: the ledger's last line",
+        "editing the `run-end` event (exit code 1 -> 0) makes the run `altered` without a key: "
+        "`ledger.sha256` (checkable with `sha256sum -c`) covers the whole ledger; a finished run "
+        "without it is `altered`, a run stopped before run-end `unfinished`; `export` refuses an "
+        "altered record (exit 4)",
+        (
+            "test_the_ledgers_last_line_is_covered_without_a_key",
+            "test_a_finished_run_without_its_ledger_sum_is_altered",
+            "test_a_run_stopped_between_the_ledger_sum_and_run_end_is_unfinished",
+        ),
+    ),
+    (
+        "hostile: pipes where files belong",
+        "a FIFO named like an image makes that image `incomplete` (`not a regular file`), never "
+        "a hang (`-j 1` and `-j 2`); a FIFO as `ledger.jsonl` or `seal.sig` makes `verify` end "
+        "with exit 4",
+        (
+            "test_a_pipe_named_like_an_image_is_refused_not_waited_on",
+            "test_verify_refuses_a_pipe_in_the_run_folder",
+        ),
+    ),
+    (
         "hostile: the cache",
         "an entry whose header names a false checksum never reaches `steps.csv` or the ledger; an "
         "entry larger than a result of the image can be is refused before it is read; a pipe in "

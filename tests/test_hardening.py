@@ -395,3 +395,56 @@ def test_a_run_stopped_between_the_ledger_sum_and_run_end_is_unfinished(record_c
     report = verify_run(record_copy)
     assert report.status == "unfinished"
     assert not any("ledger.sha256" in p for p in report.problems)
+
+
+# ---------------------------------------------------------------- pipes where files belong
+
+
+@pytest.mark.parametrize("jobs", [1, 2])
+def test_a_pipe_named_like_an_image_is_refused_not_waited_on(tmp_path: Path, jobs: int) -> None:
+    image = np.zeros((20, 20), np.uint8)
+    image[3:9, 3:9] = 200
+    lot = write_lot(tmp_path, {"a.tif": image})
+    os.mkfifo(lot / "x.tif")
+    recipe = write_recipe(tmp_path, _CACHED_RECIPE)
+    done = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "lotproof",
+            "run",
+            str(recipe),
+            str(lot),
+            "--out",
+            str(tmp_path / "runs"),
+            "--no-cache",
+            "-j",
+            str(jobs),
+            "--json",
+        ],
+        capture_output=True,
+        text=True,
+        timeout=120,
+        check=False,
+    )
+    assert done.returncode == 3, done.stderr  # the lot is incomplete: bad input
+    document = json.loads(done.stdout)
+    assert document["images"] == 2 and list(document["incomplete"]) == ["x.tif"]
+    assert "not a regular file" in document["incomplete"]["x.tif"]
+
+
+@pytest.mark.parametrize("name", ["ledger.jsonl", "seal.sig"])
+def test_verify_refuses_a_pipe_in_the_run_folder(
+    record_copy: Path, keys: tuple[Path, Path], name: str
+) -> None:
+    (record_copy / name).unlink(missing_ok=True)
+    os.mkfifo(record_copy / name)
+    done = subprocess.run(
+        [sys.executable, "-m", "lotproof", "verify", str(record_copy), "--key", str(keys[1])],
+        capture_output=True,
+        text=True,
+        timeout=60,
+        check=False,
+    )
+    assert done.returncode == 4, done.stderr
+    assert "Traceback" not in done.stderr

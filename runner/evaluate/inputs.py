@@ -190,8 +190,9 @@ class _TiffWarnings(logging.Handler):
 def _read_bytes(path: Path, shown: str) -> bytes:
     try:
         # O_NOFOLLOW is not used: symlinks inside the lot are allowed; the caller
-        # checks that the resolved file lies inside the lot.
-        fd = os.open(path, os.O_RDONLY | getattr(os, "O_BINARY", 0))
+        # checks that the resolved file lies inside the lot. O_NONBLOCK: a pipe under an
+        # image's name opens at once (and is refused below) instead of waiting for a writer.
+        fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK | getattr(os, "O_BINARY", 0))
     except OSError as err:
         if err.errno == 40:  # ELOOP
             raise InputError(f"{shown}: symbolic link loop") from None
@@ -199,7 +200,7 @@ def _read_bytes(path: Path, shown: str) -> bytes:
     try:
         info = os.fstat(fd)
         if not stat.S_ISREG(info.st_mode):
-            raise InputError(f"{shown}: not a regular file")
+            raise InputError(f"{shown}: not a regular file (a pipe, a device or a socket)")
         if info.st_size > MAX_FILE_BYTES:
             raise InputError(
                 f"{shown}: {info.st_size} bytes is more than the {MAX_FILE_BYTES} bytes "
@@ -207,6 +208,7 @@ def _read_bytes(path: Path, shown: str) -> bytes:
             )
         if info.st_size == 0:
             raise InputError(f"{shown}: the file is empty (0 bytes)")
+        os.set_blocking(fd, True)
         with os.fdopen(fd, "rb", closefd=False) as handle:
             data = handle.read(MAX_FILE_BYTES + 1)
     except OSError as err:

@@ -124,6 +124,7 @@ def test_lot_details_are_read_from_a_lot_event(catalogue_url: str, tmp_path: Pat
         for line in map(json.loads, (summary.run_dir / LEDGER_FILE).read_text().splitlines())
     ]
     (summary.run_dir / LEDGER_FILE).unlink()
+    (summary.run_dir / "ledger.sha256").unlink()
     details = {
         "customer": "Example Bearings Ltd",
         "order": "PO-77",
@@ -133,7 +134,10 @@ def test_lot_details_are_read_from_a_lot_event(catalogue_url: str, tmp_path: Pat
     with LedgerWriter(summary.run_dir / LEDGER_FILE) as ledger:
         for event in events:
             kind = event.pop("type")
-            ledger.append(kind, **event)
+            if kind == "run-end":
+                ledger.append_end(**event)
+            else:
+                ledger.append(kind, **event)
             if kind == "recipe":
                 ledger.append("lot", **details)
     assert verify_run(summary.run_dir).status == "intact"
