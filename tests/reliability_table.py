@@ -189,6 +189,13 @@ HARDENING_ROWS = [
         ),
     ),
     (
+        "hostile: image names that clash",
+        "`a b.tif`, `a_b.tif` and `A_B.tif` in one lot: each gets its own folder and figures "
+        "(the safe name and 8 hex digits of the sha256 of its id), recorded in the ledger's "
+        "`image` events; the run is whole and `intact`",
+        ("test_images_whose_safe_names_clash_get_unique_recorded_names",),
+    ),
+    (
         "hostile: the cache",
         "an entry whose header names a false checksum never reaches `steps.csv` or the ledger; an "
         "entry larger than a result of the image can be is refused before it is read; a pipe in "

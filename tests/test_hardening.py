@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import subprocess
@@ -448,3 +449,35 @@ def test_verify_refuses_a_pipe_in_the_run_folder(
     )
     assert done.returncode == 4, done.stderr
     assert "Traceback" not in done.stderr
+
+
+# ---------------------------------------------------------------- names that clash
+
+
+def test_images_whose_safe_names_clash_get_unique_recorded_names(tmp_path: Path) -> None:
+    image = np.zeros((20, 20), np.uint8)
+    image[3:9, 3:9] = 200
+    names = ["a b.tif", "a_b.tif", "A_B.tif", "c.tif"]
+    lot = write_lot(tmp_path, dict.fromkeys(names, image))
+    recipe = write_recipe(
+        tmp_path, _CACHED_RECIPE.replace("    radius: 1 px\n", "    radius: 1 px\n    keep: true\n")
+    )
+    summary = run_lot(recipe, lot, tmp_path / "runs")
+    assert summary.exit_code == EXIT_OK
+    assert verify_run(summary.run_dir).status == "intact"
+    events = [
+        json.loads(line) for line in (summary.run_dir / "ledger.jsonl").read_text().splitlines()
+    ]
+    folders = {e["image"]: e["folder"] for e in events if e["type"] == "image"}
+    assert folders["c.tif"] == "c"  # no clash: the plain safe name
+    clashing = [folders[n] for n in names[:3]]
+    assert len(set(clashing)) == 3
+    for name, folder in zip(names[:3], clashing, strict=True):
+        # source: the rule stated in record/layout.py, sha256 from hashlib (FIPS 180-4)
+        stem = name.removesuffix(".tif").replace(" ", "_")
+        assert folder == f"{stem}-" + hashlib.sha256(name.encode()).hexdigest()[:8]
+        assert (summary.run_dir / "kept" / folder / "clean.tif").is_file()
+        assert (summary.run_dir / "figures" / f"{folder}.overlay.png").is_file()
+    # the report finds every image's figures by the same names
+    html = (summary.run_dir / "report.html").read_text()
+    assert html.count("data:image/png;base64,") >= 2 * len(names)

@@ -26,7 +26,7 @@ from lotproof.runner.recipe.git import git_info
 from lotproof.runner.recipe.load import load_recipe
 from lotproof.runner.recipe.model import Recipe
 from lotproof.runner.record.folder import create_run_folder, write_previews, write_run_files
-from lotproof.runner.record.layout import LEDGER_FILE, SUMS_FILE, inside_run_folder
+from lotproof.runner.record.layout import LEDGER_FILE, SUMS_FILE, image_folders, inside_run_folder
 from lotproof.runner.record.ledger import LedgerWriter, write_sha256sums
 from lotproof.runner.record.limits import FAIL, Verdicts, evaluate_limits
 from lotproof.runner.record.signing import load_private_key, write_signature
@@ -133,7 +133,7 @@ def exit_code_for(verdicts: Verdicts) -> int:
     return EXIT_OK
 
 
-def _image_events(ledger: LedgerWriter, recipe: Recipe, result: ImageResult) -> None:
+def _image_events(ledger: LedgerWriter, recipe: Recipe, result: ImageResult, folder: str) -> None:
     """One image's events (inputs, steps, the image), made durable together."""
     events: list[tuple[str, dict[str, Any]]] = []
     for item in result.inputs:
@@ -178,6 +178,7 @@ def _image_events(ledger: LedgerWriter, recipe: Recipe, result: ImageResult) -> 
                 "reason": result.reason,
                 "worker": result.worker,
                 "notes": list(result.notes),
+                "folder": folder,
             },
         )
     )
@@ -261,18 +262,20 @@ def run_lot(
             on_start(len(samples))
 
         figures: list[str] = []
+        folders = image_folders(sample.id for sample in samples)
 
         def done(result: ImageResult) -> None:
             # write the small display images now, so the parent never holds a lot's worth
-            figures.extend(write_previews(run_dir, result))
+            figures.extend(write_previews(run_dir, result, folders))
             result.preview = {}
-            _image_events(ledger, recipe, result)
+            _image_events(ledger, recipe, result, folders[result.id])
             if on_image is not None:
                 on_image(result)
 
         results = executor.map(recipe, samples, lot, store, done)
         verdicts = evaluate_limits(recipe, results)
-        files = write_run_files(run_dir, recipe, results, verdicts, lot) + sorted(figures)
+        files = write_run_files(run_dir, recipe, results, verdicts, lot, folders)
+        files += sorted(figures)
         for name, lv in verdicts.limits.items():
             ledger.append(
                 "verdict",

@@ -11,6 +11,7 @@ import csv
 import io
 import json
 import math
+from collections.abc import Mapping
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any, BinaryIO
@@ -31,6 +32,7 @@ from lotproof.runner.record.layout import (
     TABLES_FILE,
     VERDICTS_FILE,
     figure_path,
+    image_folders,
     kept_path,
     run_folder_name,
 )
@@ -291,7 +293,7 @@ def _resolved(recipe: Recipe, results: list[ImageResult]) -> dict[str, Any]:
     }
 
 
-def _write_kept(run: Path, results: list[ImageResult]) -> list[str]:
+def _write_kept(run: Path, results: list[ImageResult], folders: Mapping[str, str]) -> list[str]:
     import tifffile
 
     written = []
@@ -300,13 +302,13 @@ def _write_kept(run: Path, results: list[ImageResult]) -> list[str]:
             if isinstance(data, np.ndarray):
                 buffer = io.BytesIO()
                 tifffile.imwrite(buffer, data, metadata=None, software=False, datetime=False)
-                name = kept_path(r.id, step_name, "tif")
+                name = kept_path(r.id, step_name, "tif", folders)
                 write_bytes(run / name, buffer.getvalue())
             elif isinstance(data, Table):
                 header = [_header(n, data.units[n]) for n in data.columns]
                 texts = [_column_text(c) for c in data.columns.values()]
                 rows = [header] + [list(row) for row in zip(*texts, strict=True)]
-                name = kept_path(r.id, step_name, "csv")
+                name = kept_path(r.id, step_name, "csv", folders)
                 write_bytes(run / name, _csv(rows))
             else:
                 continue
@@ -314,17 +316,18 @@ def _write_kept(run: Path, results: list[ImageResult]) -> list[str]:
     return written
 
 
-def write_previews(run: Path, result: ImageResult) -> list[str]:
+def write_previews(run: Path, result: ImageResult, folders: Mapping[str, str]) -> list[str]:
     """``figures/IMAGE.thumbnail.png`` and ``figures/IMAGE.overlay.png`` of one image.
 
-    ``result.preview`` holds PNG bytes (encoded by the worker) or display arrays.
+    ``result.preview`` holds PNG bytes (encoded by the worker) or display arrays;
+    ``folders`` is the lot's :func:`~lotproof.runner.record.layout.image_folders`.
     """
     from lotproof.runner.evaluate.pictures import png_bytes
 
     written = []
     for name, item in sorted(result.preview.items()):
         data = item if isinstance(item, bytes) else png_bytes(item)
-        path = figure_path(result.id, name)
+        path = figure_path(result.id, name, folders)
         write_bytes(run / path, data)
         written.append(path)
     return written
@@ -350,9 +353,20 @@ def verdicts_document(
 
 
 def write_run_files(
-    run: Path, recipe: Recipe, results: list[ImageResult], verdicts: Verdicts, lot: Path
+    run: Path,
+    recipe: Recipe,
+    results: list[ImageResult],
+    verdicts: Verdicts,
+    lot: Path,
+    folders: Mapping[str, str] | None = None,
 ) -> list[str]:
-    """Write every file of the run folder; returns their paths relative to ``run``."""
+    """Write every file of the run folder; returns their paths relative to ``run``.
+
+    ``folders`` names each image inside the run folder (default: the lot's
+    :func:`~lotproof.runner.record.layout.image_folders` of ``results``).
+    """
+    if folders is None:
+        folders = image_folders(r.id for r in results)
     write_bytes(run / RECIPE_FILE, recipe.raw)
     resolved = _resolved(recipe, results)
     resolved["lot"] = str(lot)
@@ -365,7 +379,7 @@ def write_run_files(
     write_bytes(run / STEPS_FILE, _steps_csv(results))
     inputs = {r.id: r.inputs for r in results}
     write_bytes(run / INPUTS_FILE, _json(inputs))
-    kept = _write_kept(run, results)
+    kept = _write_kept(run, results, folders)
     write_bytes(run / VERDICTS_FILE, _json(verdicts_document(recipe, results, verdicts)))
     tables = [TABLES_FILE] if extra else []
     return [

@@ -22,13 +22,19 @@ Image ids are paths in the lot (``sub/disc-01.tif``); inside the run folder they
 become safe names: the extension dropped, every character outside
 ``A-Z a-z 0-9 . _ -`` replaced by ``_``, ``..`` parts dropped. Kept results keep
 the sub-folders (``kept/sub/disc-01/clean.tif``); figures flatten them with
-``__`` (``figures/sub__disc-01.overlay.png``).
+``__`` (``figures/sub__disc-01.overlay.png``). Two images of a lot whose safe
+names would be the same, ignoring case (``a b.tif`` and ``a_b.tif``), each get
+the first 8 hex digits of the sha256 of their id appended (``a_b-1c0f3e2a``):
+:func:`image_folders` is a function of the lot's ids alone, so whoever reads the
+run folder finds the same names, and the ledger's ``image`` events record them.
 """
 
 from __future__ import annotations
 
+import hashlib
 import os
 import re
+from collections.abc import Iterable, Mapping
 from datetime import datetime
 from pathlib import Path, PurePosixPath
 
@@ -50,6 +56,7 @@ __all__ = [
     "VERDICTS_FILE",
     "figure_path",
     "image_folder",
+    "image_folders",
     "inside_run_folder",
     "is_within",
     "kept_path",
@@ -95,14 +102,46 @@ def image_folder(image_id: str) -> str:
     return "/".join(parts) or "_"
 
 
-def kept_path(image_id: str, step: str, suffix: str) -> str:
-    """``kept/IMAGE/STEP.suffix`` (POSIX, relative to the run folder); suffix ``tif`` or ``csv``."""
-    return f"{KEPT_FOLDER}/{image_folder(image_id)}/{safe_name(step)}.{suffix}"
+def image_folders(image_ids: Iterable[str]) -> dict[str, str]:
+    """The safe folder name of every image of a lot, unique within the lot.
+
+    Names that would clash (the same, ignoring case, since a file system may ignore it)
+    each get ``-`` and the first 8 hex digits of the sha256 of the image id appended.
+    The names depend on the set of ids only, never on their order.
+    """
+    ids = sorted(set(image_ids))
+    plain = {image_id: image_folder(image_id) for image_id in ids}
+    seen: dict[str, int] = {}
+    for name in plain.values():
+        # kept results keep sub-folders, figures flatten them: either form may clash
+        for key in {name.lower(), name.replace("/", "__").lower()}:
+            seen[key] = seen.get(key, 0) + 1
+    out = {}
+    for image_id, name in plain.items():
+        clash = seen[name.lower()] > 1 or seen[name.replace("/", "__").lower()] > 1
+        digest = hashlib.sha256(image_id.encode("utf-8")).hexdigest()[:8]
+        out[image_id] = f"{name}-{digest}" if clash else name
+    return out
 
 
-def figure_path(image_id: str, name: str) -> str:
-    """``figures/IMAGE.NAME.png`` (POSIX, relative to the run folder); name ``thumbnail`` or ``overlay``."""
-    return f"{FIGURES_FOLDER}/{image_folder(image_id).replace('/', '__')}.{name}.png"
+def kept_path(
+    image_id: str, step: str, suffix: str, folders: Mapping[str, str] | None = None
+) -> str:
+    """``kept/IMAGE/STEP.suffix`` (POSIX, relative to the run folder); suffix ``tif`` or ``csv``.
+
+    ``folders`` is the lot's :func:`image_folders`; without it, the plain safe name.
+    """
+    folder = folders[image_id] if folders is not None else image_folder(image_id)
+    return f"{KEPT_FOLDER}/{folder}/{safe_name(step)}.{suffix}"
+
+
+def figure_path(image_id: str, name: str, folders: Mapping[str, str] | None = None) -> str:
+    """``figures/IMAGE.NAME.png`` (POSIX, relative to the run folder); name ``thumbnail`` or ``overlay``.
+
+    ``folders`` is the lot's :func:`image_folders`; without it, the plain safe name.
+    """
+    folder = folders[image_id] if folders is not None else image_folder(image_id)
+    return f"{FIGURES_FOLDER}/{folder.replace('/', '__')}.{name}.png"
 
 
 def safe_relative(name: str) -> PurePosixPath | None:

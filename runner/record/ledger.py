@@ -18,7 +18,7 @@ Event types a run writes, in this order (fields beside ``seq``, ``type``, ``prev
 ``recipe``      path, sha256, name, revision, git ({commit, path_in_repo, modified} or null)
 ``input``       image, input, path, size, sha256, shape, dtype, calibration
 ``step``        image, step, kind, version, to, key, checksum, cache ("computed"|"reused"), seconds
-``image``       image, status, reason, worker, notes
+``image``       image, status, reason, worker, notes, folder (its safe name in the run folder)
 ``verdict``     limit, value, unit, over, bound, verdict
 ``lot-verdict`` verdict
 ``output``      path, sha256, size (path POSIX, relative to the run folder)

@@ -28,6 +28,7 @@ from lotproof.runner.record.layout import (
     RECIPE_FILE,
     VERDICTS_FILE,
     figure_path,
+    image_folders,
 )
 from lotproof.runner.record.ledger import LedgerError, LedgerLine, parse_ledger
 
@@ -55,6 +56,7 @@ class RunFolder:
     def __init__(self, path: Path, *, error: type[LotproofError] = RunFolderReadError):
         self.path = Path(path)
         self._error = error
+        self._folders: dict[str, str] | None = None
 
     def exists(self, name: str) -> bool:
         """Whether the run folder has a file ``name`` (a POSIX path inside it)."""
@@ -138,8 +140,16 @@ class RunFolder:
 
     def figure(self, image_id: str, name: str) -> builtins.bytes | None:
         """The PNG bytes of an image's figure (``thumbnail`` or ``overlay``), or None."""
-        relative = figure_path(image_id, name)
+        relative = figure_path(image_id, name, self.image_folders())
         return self.bytes(relative, required=False) if self.exists(relative) else None
+
+    def image_folders(self) -> dict[str, str]:
+        """The name of each image inside this run folder, from the ids ``verdicts.json`` lists
+        (the same function of the lot's ids that named them when the run was written)."""
+        if self._folders is None:
+            ids = self.verdicts().get("image_verdicts", {}) if self.exists(VERDICTS_FILE) else {}
+            self._folders = image_folders(ids)
+        return self._folders
 
     def ledger_lines(self, problems: list[str] | None = None) -> list[LedgerLine]:
         """The ledger's lines, checked for form and chain; what fails goes to ``problems``.
