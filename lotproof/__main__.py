@@ -1,5 +1,5 @@
 """``python -m lotproof``: the same as the ``lotproof`` command."""
 
-from lotproof.runner.cli.main import main
+from lotproof.runner.cli.entry import main
 
 main()

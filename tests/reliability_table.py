@@ -37,6 +37,7 @@ FILES = (
     "test_faults.py",
     "test_security.py",
     "test_hardening.py",
+    "test_interrupts.py",
 )
 
 #: (row, outcome, test functions); rows appear in this order
@@ -210,6 +211,17 @@ HARDENING_ROWS = [
     ),
 ]
 
+INTERRUPT_ROWS = [
+    (
+        "interrupts: Ctrl-C at random moments of a `--jobs 2` run",
+        "12 seeded moments, from start-up to the output stage: the command ends within seconds "
+        "(exit 130, or killed by the signal while Python shuts down after a finished run), no "
+        "traceback, no process of the run left, the run folder `unfinished` (or `intact` when "
+        "the signal came after the seal), never `altered`",
+        ("test_ctrl_c_at_random_moments_always_ends_the_run",),
+    ),
+]
+
 
 @dataclass
 class _Item:
@@ -355,6 +367,7 @@ def table(items: list[_Item]) -> str:
         *_rows_for(items, FAULT_ROWS, "test_faults.py"),
         *_rows_for(items, SECURITY_ROWS, "test_security.py"),
         *_rows_for(items, HARDENING_ROWS, "test_hardening.py"),
+        *_rows_for(items, INTERRUPT_ROWS, "test_interrupts.py"),
         "",
         "Exit codes in these cases: 2 the recipe or the command line is invalid (nothing ran, nothing",
         "written); 3 an image could not be analysed, or the run folder or its ledger could not be",

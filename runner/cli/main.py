@@ -11,6 +11,7 @@ the same for every command.
 from __future__ import annotations
 
 import os
+import signal
 import sys
 
 import click
@@ -58,7 +59,8 @@ for _command in (
 
 
 def main(argv: list[str] | None = None) -> None:
-    """Entry point of the ``lotproof`` console script."""
+    """Run one ``lotproof`` command with ``argv`` (default: the process's arguments) and exit."""
+    signal.signal(signal.SIGINT, signal.default_int_handler)  # interrupts unwind from here on
     if os.environ.get("NO_COLOR"):
         os.environ.setdefault("TERM", "dumb")
     try:

@@ -7,6 +7,10 @@ imports dask.
 
 from __future__ import annotations
 
+import signal
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -34,6 +38,44 @@ def _worker_task(sample: Sample, lot: str) -> ImageResult:
     return analyse_task(_WORKER["recipe"], sample, Path(lot), _WORKER["store"])
 
 
+#: seconds a worker is given to end on SIGTERM before it is killed
+STOP_GRACE_S = 2.0
+
+
+@contextmanager
+def _sigint_blocked() -> Iterator[None]:
+    """Block SIGINT in this thread for the duration: processes started meanwhile inherit it."""
+    if not hasattr(signal, "pthread_sigmask"):
+        yield
+        return
+    previous = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, previous)  # a pending Ctrl-C arrives here
+
+
+def _stop(pool: Any) -> None:
+    """End a pool now (an interrupt or an error): its workers terminated, then killed.
+
+    A worker may be deep in compiled code or a futex wait and never return to the
+    pool; waiting for it would keep lotproof from ending. Nothing a worker does can
+    spoil the record: cache entries appear whole or not at all. (The worker list is
+    the executor's ``_processes``: concurrent.futures offers no public one.)
+    """
+    workers = list((getattr(pool, "_processes", None) or {}).values())
+    for worker in workers:
+        if worker.is_alive():
+            worker.terminate()
+    pool.shutdown(wait=False, cancel_futures=True)
+    deadline = time.monotonic() + STOP_GRACE_S
+    for worker in workers:
+        worker.join(max(0.0, deadline - time.monotonic()))
+        if worker.is_alive():
+            worker.kill()
+            worker.join(1.0)
+
+
 def _context() -> Any:
     """Workers are forked from a server process that has imported the step library once.
 
@@ -47,7 +89,9 @@ def _context() -> Any:
         context = multiprocessing.get_context("forkserver")
     except ValueError:
         return multiprocessing.get_context("spawn")
-    context.set_forkserver_preload(["lotproof.runner.lot.local", "lotproof.steps"])
+    context.set_forkserver_preload(
+        ["lotproof.runner.lot.forkserver", "lotproof.runner.lot.local", "lotproof.steps"]
+    )
     return context
 
 
@@ -108,7 +152,11 @@ class LocalExecutor:
                 while queue and len(pending) < 2 * self.jobs:
                     index, sample = queue.pop()
                     try:
-                        pending[pool.submit(_worker_task, sample, str(lot))] = index
+                        # workers (and the fork server) start on a submit; they inherit a
+                        # blocked SIGINT, so Ctrl-C reaches this process alone, which ends them
+                        with _sigint_blocked():
+                            future = pool.submit(_worker_task, sample, str(lot))
+                        pending[future] = index
                     except cf.process.BrokenProcessPool as err:
                         # a worker died and took the pool with it: what is left is incomplete
                         result = ImageResult(id=sample.id).fail(
@@ -129,8 +177,8 @@ class LocalExecutor:
                     results[index] = result
                     if on_image is not None:
                         on_image(result)
-        except BaseException:
-            pool.shutdown(wait=False, cancel_futures=True)
+            pool.shutdown(wait=True)
+        except BaseException:  # an interrupt while waiting, even for the last worker to end
+            _stop(pool)
             raise
-        pool.shutdown(wait=True)
         return [r for r in results if r is not None]

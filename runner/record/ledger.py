@@ -209,20 +209,28 @@ class LedgerWriter:
         except OSError as err:
             # Events that are not known to be on disk are not in the record: cut them off,
             # so that a failed run-end never leaves a ledger that verifies as intact.
-            try:
-                os.ftruncate(self._file.fileno(), self._size)
-                self._file.seek(self._size)
-            except OSError:
-                pass
+            self._cut_back()
             raise LedgerWriteError(
                 f"{self.path}: cannot write event {self._seq + 1} ({err.strerror}); "
                 "the record is incomplete"
             ) from None
+        except BaseException:
+            self._cut_back()  # interrupted mid-write: no half line stays in the record
+            raise
         self._seq += len(lines)
         self._size += len(data)
         self._digest.update(data)
         self._last = self._seal = last
         return self._seal
+
+    def _cut_back(self) -> None:
+        if self._file is None:
+            return
+        try:
+            os.ftruncate(self._file.fileno(), self._size)
+            self._file.seek(self._size)
+        except OSError:
+            pass
 
     def _lines(self, events: list[tuple[str, dict[str, Any]]]) -> list[bytes]:
         seq, last = self._seq, self._last
