@@ -30,8 +30,8 @@ def _worker_init(recipe_raw: bytes, recipe_path: str, cache_root: str | None) ->
     _WORKER["store"] = DiskStore(Path(cache_root)) if cache_root else NullStore()
 
 
-def _worker_task(sample: Sample, lot: str) -> ImageResult:
-    return analyse_task(_WORKER["recipe"], sample, Path(lot), _WORKER["store"])
+def _worker_task(sample: Sample, lot: str, preview: bool = True) -> ImageResult:
+    return analyse_task(_WORKER["recipe"], sample, Path(lot), _WORKER["store"], preview=preview)
 
 
 def _context() -> Any:
@@ -58,8 +58,10 @@ class LocalExecutor:
     flight, so memory does not grow with the size of the lot.
     """
 
-    def __init__(self, jobs: int = 1):
+    def __init__(self, jobs: int = 1, *, preview: bool = True):
         self.jobs = max(1, int(jobs))
+        #: whether each image's display pictures are made (a run's report shows them)
+        self.preview = preview
         self.description = f"local, {self.jobs} process{'es' if self.jobs != 1 else ''}"
 
     def map(
@@ -73,7 +75,7 @@ class LocalExecutor:
         if self.jobs <= 1 or len(samples) <= 1:
             results = []
             for sample in samples:
-                result = analyse_task(recipe, sample, lot, store)
+                result = analyse_task(recipe, sample, lot, store, preview=self.preview)
                 results.append(result)
                 if on_image is not None:
                     on_image(result)
@@ -108,7 +110,7 @@ class LocalExecutor:
                 while queue and len(pending) < 2 * self.jobs:
                     index, sample = queue.pop()
                     try:
-                        pending[pool.submit(_worker_task, sample, str(lot))] = index
+                        pending[pool.submit(_worker_task, sample, str(lot), self.preview)] = index
                     except cf.process.BrokenProcessPool as err:
                         # a worker died and took the pool with it: what is left is incomplete
                         result = ImageResult(id=sample.id).fail(
