@@ -317,6 +317,11 @@ def _value_section(name: str, doc: dict[str, Any], rows: list[dict[str, str]]) -
         "unit_text": _unit(unit).strip(),
         "tolerance": _num(doc.get("tolerance")),
         "tolerance_source": doc.get("tolerance_source") or "",
+        # every key the template reads, also when the plan has no such section
+        "precision": None,
+        "precision_problem": "",
+        "trueness": None,
+        "trueness_problem": "",
     }
     if doc.get("anova") is not None:
         total, tolerance = doc.get("total_sd"), doc.get("tolerance")

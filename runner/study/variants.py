@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 import re
+import typing
 from dataclasses import dataclass
 from typing import Any
 
@@ -164,9 +165,19 @@ def _baseline(recipe: Recipe, step: str, param: str) -> Any:
             f"{', '.join(fields)}"
         )
     value = getattr(definition.params, param)
-    if isinstance(value, bool) or not isinstance(value, (Length, Area, Volume, int, float)):
+    # the field's type decides, not the value: a connectivity of 8 is one of a set, no number
+    allowed = {Length, Area, Volume, float, int, type(None)}
+    annotation = fields[param].annotation
+    members = set(typing.get_args(annotation)) or {annotation}
+    numeric = members <= allowed and members != {type(None)}
+    if (
+        not numeric
+        or isinstance(value, bool)
+        or not isinstance(value, (Length, Area, Volume, int, float))
+    ):
+        shown = str(value) if isinstance(value, (Length, Area, Volume)) else repr(value)
         raise MoveError(
-            f"steps.{step}.{param} is {value!r}, not a number; only numeric parameters "
+            f"steps.{step}.{param} is {shown}, not a number; only numeric parameters "
             "(lengths, areas, volumes, numbers) can be moved"
         )
     return value
