@@ -679,3 +679,22 @@ def test_validate_of_a_missing_image_exits_3(
         main(["validate", str(plan), "--out", str(tmp_path / "out"), "--no-cache"])
     assert exit_info.value.code == 3
     assert "P3-2.tif" in capsys.readouterr().err
+
+
+def test_a_pool_of_processes_gives_the_same_files(tmp_path: Path) -> None:
+    plan = make_study(tmp_path / "plan", extra="")
+    text = plan.read_text(encoding="utf-8")
+    plan.write_text(text[: text.index("robustness:")] + text[text.index("criteria:") :])
+    alone = run_study(plan, tmp_path / "alone", jobs=1)
+    pooled = run_study(plan, tmp_path / "pooled", jobs=2)
+    for name in (MEASUREMENTS_FILE, VALIDATION_FILE, REPORT_FILE):
+        a, b = (alone.study_dir / name).read_bytes(), (pooled.study_dir / name).read_bytes()
+        if name == REPORT_FILE:
+            timeless = re.compile(rb'<time class="study-time">[^<]*</time>')
+            a, b = timeless.sub(b"", a), timeless.sub(b"", b)
+        assert a == b, name
+    starts = [
+        next(e for e in RunFolder(s.study_dir).ledger_events() if e["type"] == "run-start")
+        for s in (alone, pooled)
+    ]
+    assert [e["executor"] for e in starts] == ["local, 1 process", "local, 2 processes"]
