@@ -6,6 +6,7 @@
 ``record``   the run folder: files, ledger, verdicts, signatures, exports, compare
 ``show``     what people look at: the report, the preview sheet
 ``jobs``     whole jobs built on the stages above: a run, a rerun, the demo
+``study``    validation studies: a plan's precision, trueness and robustness, sealed
 ``cli``      the command line, a thin layer over the jobs and stages
 
 Imports go one way, down this list (``errors`` and ``files`` serve every stage);

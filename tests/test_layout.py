@@ -1,7 +1,7 @@
 """The house rules of the package, read from the source of every module.
 
 - ``lotproof.runner`` is layered in the order data flows (recipe, evaluate, lot,
-  record, history, show, jobs, cli): a module imports only from its own layer or the
+  record, history, show, jobs, study, cli): a module imports only from its own layer or the
   layers before it, and the step library imports nothing of the runner;
 - no import cycle between modules, lazy (function-level) and type-checking
   imports included;
@@ -29,7 +29,7 @@ FOLDERS = {
     "lotproof.steps": ROOT / "steps",
 }
 #: runner sub-packages in the order data flows; a module may import only from its own rank or lower
-LAYERS = ("recipe", "evaluate", "lot", "record", "history", "show", "jobs", "cli")
+LAYERS = ("recipe", "evaluate", "lot", "record", "history", "show", "jobs", "study", "cli")
 
 
 def _modules() -> dict[str, Path]:

@@ -2,8 +2,9 @@
 
 The commands live in :mod:`~lotproof.runner.cli.method` (check, steps, schema),
 :mod:`~lotproof.runner.cli.runs` (run, rerun, demo, cache),
-:mod:`~lotproof.runner.cli.record` (verify, keygen, export, diff, compare) and
-:mod:`~lotproof.runner.cli.show` (report, preview); each is a thin shell over a
+:mod:`~lotproof.runner.cli.record` (verify, keygen, export, diff, compare),
+:mod:`~lotproof.runner.cli.show` (report, preview) and :mod:`~lotproof.runner.cli.study`
+(validate); each is a thin shell over a
 function of the stages below. Exit codes are those of :mod:`lotproof.runner.errors`,
 the same for every command.
 """
@@ -18,7 +19,7 @@ import click
 from rich.text import Text
 
 from lotproof.runner import __version__
-from lotproof.runner.cli import history, method, record, runs, show
+from lotproof.runner.cli import history, method, record, runs, show, study
 from lotproof.runner.cli.console import stderr
 from lotproof.runner.errors import (
     EXIT_INTERNAL,
@@ -54,6 +55,7 @@ for _command in (
     show.preview,
     history.history,
     history.trend,
+    study.validate,
 ):
     cli.add_command(_command)
 

@@ -19,7 +19,7 @@ from rich.text import Text
 from lotproof.runner.cli.console import emit_json, fail_recipe, mark, open_store, stderr, stdout
 from lotproof.runner.errors import EXIT_BAD_INPUT, EXIT_LIMIT_FAILED, EXIT_OK, RecipeError
 from lotproof.runner.evaluate.cache import DiskStore, default_cache_dir
-from lotproof.runner.jobs.demo import SCENARIOS, demo_paths
+from lotproof.runner.jobs.demo import SCENARIOS, demo_paths, prepare_study
 from lotproof.runner.jobs.rerun import rerun as do_rerun
 from lotproof.runner.jobs.run import run_lot
 from lotproof.runner.lot.base import ExecutorError
@@ -495,7 +495,8 @@ def demo(name: str | None, out: Path | None, as_json: bool) -> None:
 
     filter-disc: sintered bronze filter discs (porosity); powder: metal powder (size
     distribution, touching particles); lattice: CT volumes of lattice coupons (gas voids);
-    history: 32 generated lots into one catalogue, with `history` and `trend`.
+    history: 32 generated lots into one catalogue, with `history` and `trend`;
+    validation: a validation study of a coating porosity method (`lotproof validate`).
     Exits 0 when the demos ran, whatever their verdicts.
     """
 
@@ -509,8 +510,25 @@ def demo(name: str | None, out: Path | None, as_json: bool) -> None:
             continue
         if not as_json:
             stderr().print(Text(f"demo {scenario}: {SCENARIOS[scenario].summary}", style="bold"))
-        code = run_recipe(recipe, (lot,), out or default_out, as_json, quiet=False, no_cache=True)
+        if SCENARIOS[scenario].is_study:
+            code = _demo_study(scenario, out or default_out, as_json)
+        else:
+            code = run_recipe(
+                recipe, (lot,), out or default_out, as_json, quiet=False, no_cache=True
+            )
         if code not in (EXIT_OK, EXIT_LIMIT_FAILED, EXIT_BAD_INPUT):
             raise SystemExit(code)
     if not as_json:
         stderr().print("demo finished; the verdicts above are the demo lots' own.")
+
+
+def _demo_study(name: str, out: Path, as_json: bool) -> int:
+    """A study scenario: its images made, its plan run with a cache of its own (a temporary
+    folder, so that the sweep shows the steps it reuses)."""
+    import tempfile
+
+    from lotproof.runner.cli.study import validate_plan
+
+    plan = prepare_study(name)
+    with tempfile.TemporaryDirectory(prefix="lotproof-demo-cache-") as folder:
+        return validate_plan(plan, out, as_json, quiet=False, store=DiskStore(Path(folder)))

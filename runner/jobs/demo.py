@@ -3,7 +3,9 @@
 Each scenario is a recipe from ``recipes/`` and a synthetic lot from
 ``demo_run/`` made by a checked-in generator; every scenario writes its run
 folders into ``demo_run/runs/`` (run folder names carry the recipe name, so the
-scenarios never collide). Paths are relative to the source tree the package was
+scenarios never collide). A study scenario (``validation``) names a validation
+plan instead, and a generator that makes its images when the demo runs
+(:func:`prepare_study`). Paths are relative to the source tree the package was
 installed from.
 """
 
@@ -24,6 +26,7 @@ __all__ = [
     "SCENARIOS",
     "Scenario",
     "demo_paths",
+    "prepare_study",
     "project_root",
 ]
 
@@ -37,8 +40,9 @@ class Scenario:
 
     ``recipe``, ``lot`` and ``out`` are paths relative to the project root;
     ``summary`` is one line for people. ``kind`` is ``lot`` (run the recipe on the
-    lot) or ``history`` (:mod:`lotproof.runner.jobs.history_demo`: many generated
-    lots into one catalogue; ``lot`` is the folder of its generator).
+    lot), ``history`` (:mod:`lotproof.runner.jobs.history_demo`: many generated lots
+    into one catalogue; ``lot`` is the folder of its generator) or ``study`` (a
+    validation ``plan``, whose images the ``generator`` script writes into ``lot``).
     """
 
     name: str
@@ -47,6 +51,12 @@ class Scenario:
     out: str
     summary: str
     kind: str = "lot"
+    plan: str = ""
+    generator: str = ""
+
+    @property
+    def is_study(self) -> bool:
+        return self.kind == "study"
 
 
 SCENARIOS: Mapping[str, Scenario] = MappingProxyType(
@@ -82,6 +92,17 @@ SCENARIOS: Mapping[str, Scenario] = MappingProxyType(
                 "32 lots of sintered bronze bearings over ten weeks, one method revision, "
                 "a drift: lot history, control charts, capability",
                 kind="history",
+            ),
+            Scenario(
+                "validation",
+                "recipes/coating-porosity.yaml",
+                "demo_run/validation/images",
+                DEMO_OUT,
+                "validation study of a coating porosity method: precision of 10 parts by 3 "
+                "operators, trueness on 4 references, robustness of 3 parameters",
+                kind="study",
+                plan="demo_run/validation/plan.yaml",
+                generator="demo_run/validation/generate.py",
             ),
         )
     }
@@ -129,6 +150,8 @@ def demo_paths(name: str | None = None) -> tuple[Path, Path, Path]:
         raise LotproofError(f"no demo scenario {key!r}; the scenarios are {', '.join(SCENARIOS)}")
     root = project_root()
     recipe, lot = root / scenario.recipe, root / scenario.lot
+    if scenario.is_study:
+        lot = lot.parent  # the images are made when the demo runs
     if not recipe.is_file() or not lot.is_dir():
         raise InputError(
             f"the demo {scenario.name!r} needs {scenario.recipe} and {scenario.lot} beside the "
@@ -136,3 +159,37 @@ def demo_paths(name: str | None = None) -> tuple[Path, Path, Path]:
             "`pip install -e .`"
         )
     return recipe, lot, root / scenario.out
+
+
+def prepare_study(name: str) -> Path:
+    """Make the images of the study scenario ``name`` with its generator; return its plan.
+
+    The generator is a checked-in script (run, not imported as a module of the
+    package) that writes the same bytes every time into the scenario's ``lot``.
+
+    Raises
+    ------
+    LotproofError
+        When ``name`` is not a study scenario (exit code 2).
+    InputError
+        When the plan or the generator is missing (exit code 3).
+    """
+    import importlib.util
+
+    scenario = SCENARIOS.get(name)
+    if scenario is None or not scenario.is_study:
+        raise LotproofError(f"{name!r} is not a study scenario")
+    demo_paths(name)
+    root = project_root()
+    plan, generator = root / scenario.plan, root / scenario.generator
+    if not plan.is_file() or not generator.is_file():
+        raise InputError(
+            f"the demo {name!r} needs {scenario.plan} and {scenario.generator} beside the package"
+        )
+    spec = importlib.util.spec_from_file_location(f"lotproof_demo_{name}", generator)
+    if spec is None or spec.loader is None:
+        raise InputError(f"{generator}: cannot be loaded")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    module.generate(root / scenario.lot)
+    return plan

@@ -72,9 +72,12 @@ def worker_name() -> str:
     return f"{socket.gethostname()}:{os.getpid()}"
 
 
-def analyse_task(recipe: Recipe, sample: Sample, lot: Path, store: Store) -> ImageResult:
-    """The per-image task every executor runs."""
-    result = analyse_sample(recipe, sample, lot, store=store, preview=True)
+def analyse_task(
+    recipe: Recipe, sample: Sample, lot: Path, store: Store, *, preview: bool = True
+) -> ImageResult:
+    """The per-image task every executor runs; ``preview=False`` leaves out the display
+    images (a study, which draws none of them)."""
+    result = analyse_sample(recipe, sample, lot, store=store, preview=preview)
     # encode the display images here, in the worker, so the parent only writes bytes
     result.preview = {name: png_bytes(array) for name, array in result.preview.items()}
     result.worker = worker_name()

@@ -34,8 +34,8 @@ def _worker_init(recipe_raw: bytes, recipe_path: str, cache_root: str | None) ->
     _WORKER["store"] = DiskStore(Path(cache_root)) if cache_root else NullStore()
 
 
-def _worker_task(sample: Sample, lot: str) -> ImageResult:
-    return analyse_task(_WORKER["recipe"], sample, Path(lot), _WORKER["store"])
+def _worker_task(sample: Sample, lot: str, preview: bool = True) -> ImageResult:
+    return analyse_task(_WORKER["recipe"], sample, Path(lot), _WORKER["store"], preview=preview)
 
 
 #: seconds a worker is given to end on SIGTERM before it is killed
@@ -102,8 +102,10 @@ class LocalExecutor:
     flight, so memory does not grow with the size of the lot.
     """
 
-    def __init__(self, jobs: int = 1):
+    def __init__(self, jobs: int = 1, *, preview: bool = True):
         self.jobs = max(1, int(jobs))
+        #: whether each image's display pictures are made (a run's report shows them)
+        self.preview = preview
         self.description = f"local, {self.jobs} process{'es' if self.jobs != 1 else ''}"
 
     def map(
@@ -117,7 +119,7 @@ class LocalExecutor:
         if self.jobs <= 1 or len(samples) <= 1:
             results = []
             for sample in samples:
-                result = analyse_task(recipe, sample, lot, store)
+                result = analyse_task(recipe, sample, lot, store, preview=self.preview)
                 results.append(result)
                 if on_image is not None:
                     on_image(result)
@@ -155,7 +157,7 @@ class LocalExecutor:
                         # workers (and the fork server) start on a submit; they inherit a
                         # blocked SIGINT, so Ctrl-C reaches this process alone, which ends them
                         with _sigint_blocked():
-                            future = pool.submit(_worker_task, sample, str(lot))
+                            future = pool.submit(_worker_task, sample, str(lot), self.preview)
                         pending[future] = index
                     except cf.process.BrokenProcessPool as err:
                         # a worker died and took the pool with it: what is left is incomplete

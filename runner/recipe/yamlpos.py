@@ -9,7 +9,9 @@ would give one value several positions.
 The result is plain Python data (dict, list, str, int, float, bool, None) and a
 table from each path (a tuple of keys and list indexes) to the position of the
 key and of the value, so that an error found later, in the recipe's models, can
-point at the line and column it concerns.
+point at the line and column it concerns. Every scalar value also has its span,
+the character offsets where its text begins and ends (quotes included), so that a
+tool can change one value of a file and keep every other byte of it.
 """
 
 from __future__ import annotations
@@ -59,6 +61,8 @@ class LoadedYaml:
     #: path -> (position of the key, position of the value)
     positions: dict[tuple[Any, ...], tuple[Position, Position]] = field(default_factory=dict)
     problems: list[YamlProblem] = field(default_factory=list)
+    #: path of a scalar value -> (start, end) offsets of its text in the parsed string
+    spans: dict[tuple[Any, ...], tuple[int, int]] = field(default_factory=dict)
 
     def position(self, path: tuple[Any, ...], *, key: bool = False) -> Position:
         """The position of ``path``, or of its longest prefix that has one."""
@@ -191,6 +195,7 @@ def _build(
         )
         return None
     if isinstance(node, ScalarNode):
+        out.spans[path] = (node.start_mark.index, node.end_mark.index)
         try:
             return _scalar(node)
         except _TagRefused as refused:

@@ -42,6 +42,7 @@ from lotproof.steps import REGISTRY, Table
 __all__ = [
     "CAUTION",
     "ROUNDING_RULE",
+    "create_folder",
     "create_run_folder",
     "format_number",
     "value_columns",
@@ -66,8 +67,14 @@ ROUNDING_RULE = (
 
 def create_run_folder(out: Path, recipe: Recipe, now: datetime | None = None) -> Path:
     """Make a new, empty run folder under ``out``; never reuse an existing one."""
+    return create_folder(out, recipe.name, recipe.revision, now)
+
+
+def create_folder(out: Path, name: str, revision: int, now: datetime | None = None) -> Path:
+    """Make a new, empty folder ``<UTC time>-<name>-r<revision>`` under ``out`` (a run or a
+    study folder); never reuse an existing one: a second in the same second gets ``-2``."""
     now = now or datetime.now(UTC)
-    base = run_folder_name(recipe.name, recipe.revision, now)
+    base = run_folder_name(name, revision, now)
     try:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as err:

@@ -18,6 +18,17 @@ Layout (see DESIGN.md, "Run record")::
     RUN/SHA256SUMS       every output file, in ``sha256sum -c`` form
     RUN/seal.sig         the Ed25519 signature of the seal, when signed
 
+A validation study (``lotproof validate PLAN``) writes a study folder, sealed the
+same way (``ledger.jsonl``, ``SHA256SUMS``, ``report.html``), with its own files::
+
+    STUDY/plan.yaml           exact bytes of the validation plan
+    STUDY/recipe.yaml         exact bytes of the recipe the plan names
+    STUDY/design/precision.csv, design/trueness.csv   the plan's design tables, as given
+    STUDY/variants/PARAM.minus.yaml, PARAM.plus.yaml  the recipe with one parameter moved
+    STUDY/measurements.csv    one row per image: set, part, operator, replicate, values
+    STUDY/robustness.csv      one row per (moved parameter, image): values and verdicts
+    STUDY/validation.json     every statistic, the criteria and the study verdict
+
 Image ids are paths in the lot (``sub/disc-01.tif``); inside the run folder they
 become safe names: the extension dropped, every character outside
 ``A-Z a-z 0-9 . _ -`` replaced by ``_``, ``..`` parts dropped. Kept results keep
@@ -39,21 +50,28 @@ from datetime import datetime
 from pathlib import Path, PurePosixPath
 
 __all__ = [
+    "DESIGN_FOLDER",
     "FIGURES_FOLDER",
     "IMAGES_FILE",
     "INPUTS_FILE",
     "KEPT_FOLDER",
     "LEDGER_FILE",
     "LEDGER_SUM_FILE",
+    "MEASUREMENTS_FILE",
     "OBJECTS_FILE",
+    "PLAN_FILE",
     "RECIPE_FILE",
     "REPORT_FILE",
     "RESOLVED_FILE",
+    "ROBUSTNESS_FILE",
     "SIGNATURE_FILE",
     "STEPS_FILE",
     "SUMS_FILE",
     "TABLES_FILE",
+    "VALIDATION_FILE",
+    "VARIANTS_FOLDER",
     "VERDICTS_FILE",
+    "design_path",
     "figure_path",
     "image_folder",
     "image_folders",
@@ -63,6 +81,7 @@ __all__ = [
     "run_folder_name",
     "safe_name",
     "safe_relative",
+    "variant_path",
 ]
 
 RECIPE_FILE = "recipe.yaml"
@@ -81,6 +100,12 @@ SUMS_FILE = "SHA256SUMS"
 SIGNATURE_FILE = "seal.sig"
 KEPT_FOLDER = "kept"
 FIGURES_FOLDER = "figures"
+PLAN_FILE = "plan.yaml"
+MEASUREMENTS_FILE = "measurements.csv"
+ROBUSTNESS_FILE = "robustness.csv"
+VALIDATION_FILE = "validation.json"
+DESIGN_FOLDER = "design"
+VARIANTS_FOLDER = "variants"
 
 _UNSAFE = re.compile(r"[^A-Za-z0-9._-]+")
 
@@ -142,6 +167,16 @@ def figure_path(image_id: str, name: str, folders: Mapping[str, str] | None = No
     """
     folder = folders[image_id] if folders is not None else image_folder(image_id)
     return f"{FIGURES_FOLDER}/{folder.replace('/', '__')}.{name}.png"
+
+
+def design_path(part: str) -> str:
+    """``design/PART.csv``: the copy of a plan's design table (``precision`` or ``trueness``)."""
+    return f"{DESIGN_FOLDER}/{safe_name(part)}.csv"
+
+
+def variant_path(parameter: str, direction: str) -> str:
+    """``variants/STEP.PARAM.DIRECTION.yaml``: the recipe with one parameter moved (minus, plus)."""
+    return f"{VARIANTS_FOLDER}/{safe_name(parameter)}.{safe_name(direction)}.yaml"
 
 
 def safe_relative(name: str) -> PurePosixPath | None:

@@ -19,6 +19,7 @@ from lotproof.runner.evaluate.hashing import file_sha256
 from lotproof.runner.record.layout import (
     LEDGER_FILE,
     LEDGER_SUM_FILE,
+    PLAN_FILE,
     RECIPE_FILE,
     SIGNATURE_FILE,
     SUMS_FILE,
@@ -152,7 +153,8 @@ def verify_run(
        has ``seq`` equal to its line number and ``prev`` equal to the hash of the
        line before (:data:`GENESIS` for the first); ``run-end`` is the last event;
     2. every ``output`` event's file exists with the recorded size and sha256, and
-       ``recipe.yaml`` has the sha256 of the ``recipe`` event;
+       ``recipe.yaml`` has the sha256 of the ``recipe`` event (and, in a study folder,
+       ``plan.yaml`` that of the ``plan`` event);
     3. ``SHA256SUMS``, when it is an output, agrees with the ledger line by line;
     4. the seal equals ``expected_seal`` when one is given (the seal printed at the
        end of the run); with ``public_key``, ``seal.sig`` verifies over the seal's
@@ -193,11 +195,13 @@ def verify_run(
 
     recorded: dict[str, str] = {}
     checked: set[str] = set()
-    recipe_sha: str | None = None
+    # the file each identity event names by its sha256: the recipe, and a study's plan
+    named = {"recipe": RECIPE_FILE, "plan": PLAN_FILE}
+    identities: dict[str, str] = {}
     for number, event in events:
         where = f"{LEDGER_FILE} line {number}"
-        if event.get("type") == "recipe" and isinstance(event.get("sha256"), str):
-            recipe_sha = event["sha256"]
+        if event.get("type") in named and isinstance(event.get("sha256"), str):
+            identities[named[event["type"]]] = event["sha256"]
         if event.get("type") != "output":
             continue
         name, digest = event.get("path"), event.get("sha256")
@@ -217,8 +221,10 @@ def verify_run(
         problem = _check_file(run_dir, name, digest, event.get("size"), where)
         if problem:
             problems.append(problem)
-    if recipe_sha is not None and RECIPE_FILE in recorded and recorded[RECIPE_FILE] != recipe_sha:
-        problems.append("recipe.yaml: its output sha256 differs from the recipe event's sha256")
+    for name, sha in identities.items():
+        if name in recorded and recorded[name] != sha:
+            kind = next(k for k, v in named.items() if v == name)
+            problems.append(f"{name}: its output sha256 differs from the {kind} event's sha256")
 
     if SUMS_FILE in recorded:
         _check_sums(run_dir, recorded, problems)
