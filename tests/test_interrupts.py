@@ -89,12 +89,27 @@ def _start(recipe: object, lot: object, out: Path) -> subprocess.Popen[bytes]:
     )
 
 
+def _alive_in_group(pgid: int) -> list[int]:
+    """Processes of the group that still run (a zombie has ended: it only waits to be reaped,
+    and not every machine's first process reaps orphans)."""
+    alive = []
+    for entry in Path("/proc").iterdir():
+        if not entry.name.isdigit():
+            continue
+        try:
+            fields = (entry / "stat").read_text().rsplit(")", 1)[1].split()
+        except OSError:
+            continue  # ended meanwhile
+        state, group = fields[0], int(fields[2])  # proc(5): state, ppid, pgrp
+        if group == pgid and state != "Z":
+            alive.append(int(entry.name))
+    return alive
+
+
 def _group_gone(pgid: int, within: float) -> bool:
     deadline = time.monotonic() + within
     while time.monotonic() < deadline:
-        try:
-            os.killpg(pgid, 0)
-        except ProcessLookupError:
+        if not _alive_in_group(pgid):
             return True
         time.sleep(0.05)
     return False

@@ -5,7 +5,8 @@ takes a moment; a Ctrl-C in that moment would end Python with a traceback. This
 module imports nothing heavy: it makes SIGINT end the process quietly (exit 130,
 nothing has been written yet), imports the command line, and hands over to
 :func:`lotproof.runner.cli.main.main`, which restores Python's own handling so that
-an interrupt during a run unwinds through the run's cleanup.
+an interrupt during a run unwinds through the run's cleanup. Once it has, the
+process ends at once with exit 130, without waiting on the worker pool's threads.
 """
 
 from __future__ import annotations
@@ -31,4 +32,14 @@ def main(argv: list[str] | None = None) -> None:
     signal.signal(signal.SIGINT, _quiet_interrupt)
     from lotproof.runner.cli.main import main as run_command
 
-    run_command(argv)
+    try:
+        run_command(argv)
+    except SystemExit as ended:
+        if ended.code != EXIT_INTERRUPTED:
+            raise
+        # Interrupted: the run has unwound (its ledger closed, its workers ended). Python's
+        # own exit would now join the worker pool's threads, and a worker killed while it
+        # wrote a result leaves one of them waiting forever on half a message. End now.
+        sys.stdout.flush()
+        sys.stderr.flush()
+        os._exit(EXIT_INTERRUPTED)

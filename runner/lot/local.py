@@ -8,6 +8,7 @@ imports dask.
 from __future__ import annotations
 
 import signal
+import threading
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -44,15 +45,28 @@ STOP_GRACE_S = 2.0
 
 @contextmanager
 def _sigint_blocked() -> Iterator[None]:
-    """Block SIGINT in this thread for the duration: processes started meanwhile inherit it."""
-    if not hasattr(signal, "pthread_sigmask"):
+    """Hold Ctrl-C back for the duration; it is raised, once, when the block ends.
+
+    Two things are held back: the signal itself (blocked, so that processes started
+    meanwhile inherit it blocked), and a Ctrl-C that had already arrived but was not
+    yet raised (Python raises it at the next bytecode, which could fall between a
+    worker's start and the pool's note of it, leaving a worker no one ends).
+    """
+    if not hasattr(signal, "pthread_sigmask") or threading.current_thread() is not (
+        threading.main_thread()
+    ):
         yield
         return
+    held: list[int] = []
+    handler = signal.signal(signal.SIGINT, lambda signum, frame: held.append(signum))
     previous = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
     try:
         yield
     finally:
-        signal.pthread_sigmask(signal.SIG_SETMASK, previous)  # a pending Ctrl-C arrives here
+        signal.pthread_sigmask(signal.SIG_SETMASK, previous)  # a pending Ctrl-C runs the hold
+        signal.signal(signal.SIGINT, handler)
+    if held:
+        raise KeyboardInterrupt
 
 
 def _stop(pool: Any) -> None:
