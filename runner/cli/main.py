@@ -2,7 +2,7 @@
 
 The commands live in :mod:`~lotproof.runner.cli.method` (check, steps, schema),
 :mod:`~lotproof.runner.cli.runs` (run, rerun, demo, cache),
-:mod:`~lotproof.runner.cli.record` (verify, keygen, export, diff, compare) and
+:mod:`~lotproof.runner.cli.record` (verify, approve, keygen, export, diff, compare) and
 :mod:`~lotproof.runner.cli.show` (report, preview); each is a thin shell over a
 function of the stages below. Exit codes are those of :mod:`lotproof.runner.errors`,
 the same for every command.
@@ -45,6 +45,7 @@ for _command in (
     runs.cache,
     runs.demo,
     record.verify,
+    record.approve,
     record.keygen_command,
     record.export,
     record.diff,

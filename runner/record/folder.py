@@ -20,6 +20,7 @@ import numpy as np
 from lotproof.runner.errors import RunFolderError
 from lotproof.runner.evaluate.image import ImageResult, resolve_params
 from lotproof.runner.files import write_file
+from lotproof.runner.recipe.lotsheet import LotDetails
 from lotproof.runner.recipe.model import Recipe
 from lotproof.runner.record.layout import (
     IMAGES_FILE,
@@ -43,6 +44,7 @@ __all__ = [
     "create_run_folder",
     "format_number",
     "value_columns",
+    "verdicts_document",
     "write_bytes",
     "write_run_files",
 ]
@@ -284,6 +286,7 @@ def _resolved(recipe: Recipe, results: list[ImageResult]) -> dict[str, Any]:
                 "max": limit.high,
                 "as_written": limit.written,
                 "inclusive": True,
+                "display": limit.display,
             }
             for name, limit in recipe.limits.items()
         },
@@ -331,8 +334,13 @@ def write_previews(run: Path, result: ImageResult) -> list[str]:
 
 
 def verdicts_document(
-    recipe: Recipe, results: list[ImageResult], verdicts: Verdicts
+    recipe: Recipe,
+    results: list[ImageResult],
+    verdicts: Verdicts,
+    details: LotDetails | None = None,
 ) -> dict[str, Any]:
+    """``verdicts.json``: the lot verdict, the method, the lot's details, every limit."""
+    lot: dict[str, Any] = {} if details is None else {"lot": details.document()}
     return {
         "lot_verdict": verdicts.lot,
         "method": {
@@ -340,6 +348,7 @@ def verdicts_document(
             "revision": recipe.revision,
             "recipe_sha256": recipe.sha256,
         },
+        **lot,
         "images": verdicts.images,
         "incomplete_images": {r.id: r.reason for r in results if r.status != "ok"},
         "image_verdicts": {r.id: verdicts.image_verdict(r.id) for r in results},
@@ -350,9 +359,17 @@ def verdicts_document(
 
 
 def write_run_files(
-    run: Path, recipe: Recipe, results: list[ImageResult], verdicts: Verdicts, lot: Path
+    run: Path,
+    recipe: Recipe,
+    results: list[ImageResult],
+    verdicts: Verdicts,
+    lot: Path,
+    details: LotDetails | None = None,
 ) -> list[str]:
-    """Write every file of the run folder; returns their paths relative to ``run``."""
+    """Write every file of the run folder; returns their paths relative to ``run``.
+
+    ``details`` (customer, order, ...) go into ``verdicts.json`` beside the verdicts.
+    """
     write_bytes(run / RECIPE_FILE, recipe.raw)
     resolved = _resolved(recipe, results)
     resolved["lot"] = str(lot)
@@ -366,7 +383,7 @@ def write_run_files(
     inputs = {r.id: r.inputs for r in results}
     write_bytes(run / INPUTS_FILE, _json(inputs))
     kept = _write_kept(run, results)
-    write_bytes(run / VERDICTS_FILE, _json(verdicts_document(recipe, results, verdicts)))
+    write_bytes(run / VERDICTS_FILE, _json(verdicts_document(recipe, results, verdicts, details)))
     tables = [TABLES_FILE] if extra else []
     return [
         RECIPE_FILE,

@@ -16,6 +16,8 @@ Layout (see DESIGN.md, "Run record")::
     RUN/ledger.jsonl     the hash-chained record of everything above
     RUN/SHA256SUMS       every output file, in ``sha256sum -c`` form
     RUN/seal.sig         the Ed25519 signature of the seal, when signed
+    RUN/approvals.jsonl  review and release records, added after the run: beside the sealed
+                         files, never one of them (each chained and signed; checked by verify)
 
 Image ids are paths in the lot (``sub/disc-01.tif``); inside the run folder they
 become safe names: the extension dropped, every character outside
@@ -32,6 +34,8 @@ from datetime import datetime
 from pathlib import Path, PurePosixPath
 
 __all__ = [
+    "APPROVALS_FILE",
+    "BESIDE_THE_SEAL",
     "FIGURES_FOLDER",
     "IMAGES_FILE",
     "INPUTS_FILE",
@@ -68,6 +72,10 @@ REPORT_FILE = "report.html"
 LEDGER_FILE = "ledger.jsonl"
 SUMS_FILE = "SHA256SUMS"
 SIGNATURE_FILE = "seal.sig"
+APPROVALS_FILE = "approvals.jsonl"
+#: the files of a run folder that no output event records: the ledger itself and what is
+#: added beside the sealed files after the run (the seal's signature, the approvals)
+BESIDE_THE_SEAL = (LEDGER_FILE, SIGNATURE_FILE, APPROVALS_FILE)
 KEPT_FOLDER = "kept"
 FIGURES_FOLDER = "figures"
 
