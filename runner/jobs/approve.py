@@ -20,7 +20,7 @@ from lotproof.runner.record.approvals import (
     ApprovalIntegrityError,
     append_approval,
 )
-from lotproof.runner.record.layout import VERDICTS_FILE
+from lotproof.runner.record.layout import VERDICTS_FILE, is_within
 from lotproof.runner.record.recipe_approval import RecipeApproval, write_recipe_approval
 from lotproof.runner.record.signing import load_private_key
 from lotproof.runner.record.verify import verify_run
@@ -46,15 +46,21 @@ def approve_run(
     run_dir = Path(run_dir)
     if not (run_dir / VERDICTS_FILE).is_file():
         raise ApprovalError(f"{run_dir}: not a run folder (no {VERDICTS_FILE})")
+    if is_within(run_dir, private_key):
+        raise ApprovalError(f"{private_key}: a private key must never sit in the run folder")
     load_private_key(private_key)  # a bad key fails before the record is read
-    report = verify_run(run_dir)
-    if report.status != "intact" or report.seal is None:
-        first = report.problems[0] if report.problems else report.status
-        raise ApprovalIntegrityError(
-            f"{run_dir}: the record is {report.status} ({first}); nothing was signed"
-        )
+
+    def intact_seal() -> str:
+        report = verify_run(run_dir)
+        if report.status != "intact" or report.seal is None:
+            first = report.problems[0] if report.problems else report.status
+            raise ApprovalIntegrityError(
+                f"{run_dir}: the record is {report.status} ({first}); nothing was signed"
+            )
+        return report.seal
+
     return append_approval(
-        run_dir, report.seal, private_key, role=role, name=name, comment=comment, time_utc=utc_now()
+        run_dir, intact_seal, private_key, role=role, name=name, comment=comment, time_utc=utc_now()
     )
 
 

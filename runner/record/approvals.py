@@ -31,14 +31,16 @@ against the record's hash, which ``lotproof approve`` prints and the rebuilt
 certificate shows (``verify --approval HASH``: that record must still be there).
 
 Writing: the whole new file, atomically. Under an exclusive lock on the run
-folder (``flock`` on the folder itself: no lock file is left in it), the old
+folder (:func:`lotproof.runner.files.folder_lock`: ``flock`` on the folder
+itself, so no lock file is left in it), the run's record is verified, the old
 file is read and checked, the new record is signed, and the old lines plus the
 new one are written with ``write_file(..., replace=True, durable=True)``. An
 append with fsync would be cheaper, but a crash in the middle of an append
 leaves a torn last line that a reader cannot tell from tampering; the atomic
 replace leaves either the old file or the new one, whole. The lock makes two
 approvers at the same moment take turns, so neither record is lost and each
-chains from the other.
+chains from the other; ``verify`` takes it shared, so it never meets the
+writer's temporary file.
 """
 
 from __future__ import annotations
@@ -46,16 +48,14 @@ from __future__ import annotations
 import base64
 import binascii
 import json
-import os
 import re
-from collections.abc import Iterator, Mapping
-from contextlib import contextmanager
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Literal
 
 from lotproof.runner.errors import EXIT_INTEGRITY, EXIT_INVALID, LotproofError, RunFolderError
-from lotproof.runner.files import read_file, write_file
+from lotproof.runner.files import folder_lock, read_file, write_file
 from lotproof.runner.record.layout import APPROVALS_FILE, is_within
 from lotproof.runner.record.ledger import canonical, line_hash
 from lotproof.runner.record.signing import sign_payload, signature_matches
@@ -348,22 +348,9 @@ def _with(record: Approval, check: SignatureCheck, key_file: str) -> Approval:
     return replace(record, check=check, key_file=key_file)
 
 
-@contextmanager
-def _locked(folder: Path) -> Iterator[None]:
-    """An exclusive lock on ``folder`` itself (nothing is written to lock it)."""
-    import fcntl
-
-    fd = os.open(folder, os.O_RDONLY)
-    try:
-        fcntl.flock(fd, fcntl.LOCK_EX)
-        yield
-    finally:
-        os.close(fd)  # closing releases the lock
-
-
 def append_approval(
     run_dir: Path,
-    seal: str,
+    seal: Callable[[], str],
     private_key: Path,
     *,
     role: str,
@@ -371,10 +358,11 @@ def append_approval(
     comment: str = "",
     time_utc: str,
 ) -> Approval:
-    """Sign a new approval of the run with ``seal`` and add it to ``RUN/approvals.jsonl``.
+    """Sign a new approval of the run and add it to ``RUN/approvals.jsonl``.
 
-    The caller has checked that the run's record is intact and ends in ``seal``.
-    See the module docstring for how the file is written.
+    ``seal`` checks the run's record and returns its seal (or raises); it is called
+    under the run folder's exclusive lock, so nothing changes between the check and
+    the write. See the module docstring for how the file is written.
 
     Raises
     ------
@@ -394,31 +382,32 @@ def append_approval(
     name = check_name(name)
     comment = _check_comment(comment)
     path = run_dir / APPROVALS_FILE
-    with _locked(run_dir):
+    with folder_lock(run_dir, exclusive=True):
+        checked_seal = seal()
         old = b""
         roles: list[str] = []
-        prev = seal
+        prev = checked_seal
         if path.exists() or path.is_symlink():
             if path.is_symlink():
                 raise ApprovalIntegrityError(f"{path}: a symbolic link, not the approvals")
             old = read_file(path, max_bytes=_MAX_FILE_BYTES)
             problems: list[str] = []
-            records = parse_approvals(old, seal, problems)
+            records = parse_approvals(old, checked_seal, problems)
             if problems:
                 raise ApprovalIntegrityError(
                     f"{path}: {problems[0]}; nothing was signed (see `lotproof verify`)"
                 )
             roles = [r.role for r in records]
-            prev = records[-1].hash if records else seal
+            prev = records[-1].hash if records else checked_seal
         problem = _role_problem(role, roles)
         if problem:
             raise ApprovalError(f"--role {role}: {problem}")
-        payload = signed_fields(seal, role, name, time_utc, comment, prev)
+        payload = signed_fields(checked_seal, role, name, time_utc, comment, prev)
         signature, key = sign_payload(private_key, payload)
         line = canonical(
             {
                 "seq": len(roles) + 1,
-                "seal": seal,
+                "seal": checked_seal,
                 "role": role,
                 "name": name,
                 "time_utc": time_utc,
@@ -436,7 +425,7 @@ def append_approval(
             ) from None
     return Approval(
         seq=len(roles) + 1,
-        seal=seal,
+        seal=checked_seal,
         role=role,
         name=name,
         time_utc=time_utc,

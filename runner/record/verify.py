@@ -16,6 +16,7 @@ from typing import TYPE_CHECKING, Any, Literal
 
 from lotproof.runner.errors import EXIT_INTEGRITY
 from lotproof.runner.evaluate.hashing import file_sha256
+from lotproof.runner.files import folder_lock
 from lotproof.runner.record.approvals import Approval, check_approvals
 from lotproof.runner.record.layout import (
     APPROVALS_FILE,
@@ -185,6 +186,18 @@ def verify_run(
         When ``public_key`` or the ``trust`` folder cannot be read (exit 2).
     """
     run_dir = Path(run_dir)
+    # shared: an approval being added (under the exclusive lock) is waited for, never half seen
+    with folder_lock(run_dir, exclusive=False):
+        return _verify(run_dir, public_key, expected_seal, trust, expected_approval)
+
+
+def _verify(
+    run_dir: Path,
+    public_key: Path | None,
+    expected_seal: str | None,
+    trust: Path | None,
+    expected_approval: str | None,
+) -> VerifyReport:
     keys: dict[str, tuple[Ed25519PublicKey, str]] = {}
     if trust is not None:
         keys.update({f: (t.key, str(t.path)) for f, t in load_trust(trust).items()})
