@@ -272,7 +272,8 @@ def test_a_volume_says_which_slice_is_shown() -> None:
 def test_css_text_reads_back_as_written() -> None:
     text = 'Lot A"17</style><b>\\ · µ'
     escaped = _css_text(text)
-    assert re.fullmatch(r"[A-Za-z0-9\\ ]*", escaped)  # nothing HTML escaping would change
+    assert re.fullmatch(r"[A-Za-z0-9\\ ._-]*", escaped)  # nothing HTML escaping would change
+    assert _css_text("20261204T201711Z-spot_test.r2") == "20261204T201711Z-spot_test.r2"
     # source: CSS Syntax Level 3, 4.3.7 (a hex escape, ended by one optional space)
     decoded = re.sub(r"\\([0-9a-f]{1,6}) ?", lambda m: chr(int(m[1], 16)), escaped)
     assert decoded == text

@@ -357,13 +357,17 @@ def _bound(low: Any, high: Any, unit: str) -> str:
 
 
 def _css_text(text: str) -> str:
-    """``text`` for a CSS string: every character but ASCII letters and digits escaped.
+    """``text`` for a CSS string: every character but ASCII letters, digits, space, ``-_.``
+    escaped.
 
     Markup-safe as it is (nothing the HTML escaping would change is left), so a lot
-    name holding quotes, ``</style>`` or backslashes prints as written.
+    name holding quotes, ``</style>`` or backslashes prints as written; a run
+    folder's name (``A-Z a-z 0-9 . _ -``) stays as it is.
     """
     # an escape ends at the space after it, which CSS takes as part of the escape
-    return "".join(ch if ch.isascii() and ch.isalnum() else f"\\{ord(ch):x} " for ch in text)
+    return "".join(
+        ch if ch.isascii() and (ch.isalnum() or ch in " -_.") else f"\\{ord(ch):x} " for ch in text
+    )
 
 
 def _plural(n: int, word: str) -> str:
