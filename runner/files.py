@@ -25,6 +25,11 @@ Errors are plain :class:`OSError` (:class:`FileExistsError` when ``replace`` is
 :func:`read_file` reads a file that must be a regular file: a pipe, a device or
 a socket under that name is refused before it is opened for reading, so nothing
 lotproof reads can make it wait forever.
+
+:func:`folder_lock` takes an advisory lock on a folder itself (``flock`` on the
+folder; no lock file is made in it): exclusive for one who adds a file beside a
+run's sealed files, shared for one who checks the folder, so a check never sees
+a writer's temporary file.
 """
 
 from __future__ import annotations
@@ -32,11 +37,20 @@ from __future__ import annotations
 import os
 import stat
 import tempfile
-from collections.abc import Callable
+import threading
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import BinaryIO
 
-__all__ = ["TEMP_PREFIX", "NotARegularFile", "fsync_folder", "read_file", "write_file"]
+__all__ = [
+    "TEMP_PREFIX",
+    "NotARegularFile",
+    "folder_lock",
+    "fsync_folder",
+    "read_file",
+    "write_file",
+]
 
 #: prefix of the temporary files a write leaves only when it is killed
 TEMP_PREFIX = ".tmp-"
@@ -164,6 +178,44 @@ def fsync_folder(folder: Path) -> None:
         pass
     finally:
         os.close(fd)
+
+
+_HELD = threading.local()
+
+
+@contextmanager
+def folder_lock(folder: Path, *, exclusive: bool) -> Iterator[None]:
+    """Hold an advisory ``flock`` on ``folder`` itself: exclusive, or shared with other readers.
+
+    Re-entrant within one thread (a check made while this thread holds the
+    exclusive lock does not wait for itself); other threads and processes take
+    turns. Best effort: where the file system has no locks, nothing is held.
+    """
+    import fcntl
+
+    key = os.path.abspath(folder)
+    held: set[str] = getattr(_HELD, "folders", set())
+    _HELD.folders = held
+    if key in held:
+        yield
+        return
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:
+        yield
+        return
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX if exclusive else fcntl.LOCK_SH)
+        except OSError:
+            pass  # no locks on this file system
+        held.add(key)
+        try:
+            yield
+        finally:
+            held.discard(key)
+    finally:
+        os.close(fd)  # closing releases the lock
 
 
 def _umasked() -> int:

@@ -56,6 +56,7 @@ __all__ = [
     "parse_volume",
     "resolve_for_spacing",
     "resolve_to_px",
+    "typeset_unit",
     "unit_factor",
     "unit_spellings",
 ]
@@ -166,6 +167,35 @@ def unit_factor(given: str, unit: str) -> float | None:
     if um_given is None or um_unit is None:
         return 1.0  # px, px2, px3 in their own spellings
     return um_unit / um_given if reciprocal else um_given / um_unit
+
+
+_SUPERSCRIPTS = str.maketrans(
+    "0123456789-", "\u2070\u00b9\u00b2\u00b3\u2074\u2075\u2076\u2077\u2078\u2079\u207b"
+)
+
+
+def typeset_unit(unit: str) -> str:
+    """A unit as printed for people: ``um`` -> ``µm``, ``um2`` -> ``µm²``, ``1/mm2`` -> ``mm⁻²``.
+
+    Files (CSV headers, JSON) keep the ASCII spelling; this is for reports. A
+    dimensionless ``-`` prints as nothing; a unit this table does not know is
+    printed as it is.
+    """
+    if unit in ("-", ""):
+        return ""
+    found = _family(unit)
+    if found is None:
+        return unit
+    table, reciprocal, base = found
+    canonical = table[base][0]
+    stem = canonical.rstrip("23")
+    power = int(canonical[len(stem) :] or 1)
+    stem = "\u00b5m" if stem == "um" else stem
+    if reciprocal:
+        power = -power
+    if power == 1:
+        return stem
+    return stem + str(power).translate(_SUPERSCRIPTS)
 
 
 _QUANTITY = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*([^\s\d].*?)\s*$")

@@ -271,3 +271,21 @@ def git(repo: Path, *args: str) -> str:
         text=True,
     )
     return done.stdout.strip()
+
+
+# ---------------------------------------------------------------- signers
+
+
+def signers(folder: Path, names: Sequence[str] = ("reviewer", "releaser")) -> dict[str, Path]:
+    """Ed25519 key pairs for people who sign: ``folder/NAME.key`` each, public keys in a trust folder.
+
+    Returns every private key by name, and the trust folder (``folder/trust``, one
+    ``NAME.pub`` a person) under ``"trust"``.
+    """
+    from lotproof.runner.record.signing import keygen
+
+    found = {"trust": folder / "trust"}
+    for name in names:
+        keygen(folder / f"{name}.key", folder / "trust" / f"{name}.pub")
+        found[name] = folder / f"{name}.key"
+    return found

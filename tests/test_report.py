@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import base64
 import json
+import os
 import re
 import shutil
 import xml.etree.ElementTree as ET
@@ -63,6 +64,10 @@ limits:
     over: lot-mean
     range: [0.001, 0.5]
 """
+
+
+#: how the report prints the fixture's units (source: ISO 80000-1 symbols, from memory)
+TYPESET = {"-": "", "um": "\u00b5m"}
 
 
 def _image(n_spots: int) -> np.ndarray:
@@ -160,8 +165,13 @@ def test_every_limit_image_and_verdict_is_as_verdicts_json_says(
         assert VERDICT_MARKS[lv["verdict"]] in cells[7], name
         assert cells[2] == lv["value_of"]
         assert cells[3] == lv["over"]
-        assert cells[5] == lv["bound"]
-        assert cells[6] == ("" if lv["unit"] == "-" else lv["unit"])
+        # the bounds as a certificate prints them: ≤ / ≥ / "a to b", the unit typeset
+        unit = TYPESET[lv["unit"]]
+        low, high = (None if b is None else format(b, "g") for b in (lv["min"], lv["max"]))
+        shown = f" {unit}" if unit else ""
+        bound = f"{low} to {high}" if low and high else f"\u2265 {low}" if low else f"\u2264 {high}"
+        assert cells[5] == bound + shown
+        assert cells[6] == unit
         if lv["over"] != "each":
             assert float(row["value"]) == lv["value"]  # every digit kept in the attribute
             assert cells[4] == format(lv["value"], ".6g")
@@ -204,10 +214,11 @@ def test_no_external_reference(finished_run: Path) -> None:
     html = build_report(finished_run)
     page = _parse(html)
     assert page.urls, "the report embeds its pictures"
+    # pictures embedded; links only to its own parts (a thumbnail opens its full-size overlay)
+    embedded = ("data:image/png;base64,", "data:image/jpeg;base64,", "data:image/svg+xml;base64,")
     assert all(
-        url.startswith(("data:image/png;base64,", "data:image/svg+xml;base64,"))
-        for url in page.urls
-    )
+        url.startswith(embedded) or re.fullmatch(r"#(zoom|image)-\d+", url) for url in page.urls
+    ), [url[:40] for url in page.urls]
     assert not page.tags & {"link", "script", "iframe", "object", "embed", "base"}
     # base64 may hold '//', so look at everything except the data URIs
     rest = re.sub(rb"data:[a-z/+]+;base64,[A-Za-z0-9+/=]+", b"", html)
@@ -345,11 +356,12 @@ MARKUP = ("<script>alert(1)</script>", '"><img src=x onerror=alert(1)>', "&amp;"
 WRITTEN_TAGS = {
     "html", "head", "meta", "title", "style", "body", "header", "h1", "h2", "h3", "p", "dl",
     "dt", "dd", "code", "span", "section", "div", "strong", "br", "table", "thead", "tbody",
-    "tr", "th", "td", "figure", "img", "figcaption", "ul", "li", "footer",
+    "tr", "th", "td", "figure", "img", "figcaption", "ul", "li", "footer", "a",
 }  # fmt: skip
 WRITTEN_ATTRIBUTES = {
     "lang", "charset", "name", "content", "class", "id", "colspan", "src", "alt",
     "data-verdict", "data-limit", "data-value", "data-image", "data-value-of", "data-step",
+    "href", "data-released", "data-role", "data-signature", "data-detail", "data-definition",
 }  # fmt: skip
 _VOID = {"meta", "br", "img"}
 
@@ -410,11 +422,15 @@ def test_markup_in_a_summary_a_lot_name_and_file_names_is_printed_as_text(
     assert {name for _, attrs, _ in page.elements for name in attrs} <= WRITTEN_ATTRIBUTES
     assert len(page.find("style")) == 1 and not page.find("script")
     assert all(a["src"].startswith("data:image/") for a, _ in page.find("img"))
+    assert all(a["href"].startswith("#") for a, _ in page.find("a"))
     assert b"<script" not in html and b"<img src=x" not in html and b"<b>" not in html
     # and every text reads back exactly as it was written
     assert [text for _, text in page.find("p", **{"class": "summary"})] == [summary]
     assert [text for _, text in page.find("h1")] == [f"Lot {lot.name} \u00b7 spot-report r3"]
-    assert f"{lot.name} ({lot})" in [text for _, text in page.find("dd")]
+    # the lot folder relative to where lotproof ran (here: where the tests run)
+    assert f"{lot.name} ({Path(os.path.relpath(lot)).as_posix()})" in [
+        text for _, text in page.find("dd")
+    ]
     assert f"{recipe}" in [text for _, text in page.find("code")]
     rows = {a["data-image"]: text for a, text in page.find("tr") if "data-image" in a}
     assert set(rows) == set(names)
@@ -424,9 +440,11 @@ def test_markup_in_a_summary_a_lot_name_and_file_names_is_printed_as_text(
     for name in names:
         assert name in strong
         assert rows[name].startswith(name)
-        assert {f"{name}: image", f"{name}: detected objects outlined"} <= alts
+        outlined = f"{name}: detected objects outlined"
+        assert {outlined, f"{outlined}, full size"} <= alts
         assert name in files  # the input files table
-    # the only pictures are the builder's own: two previews an image and one size plot
+    # the only pictures are the builder's own: an image's thumbnail and its full-size overlay
+    # (a small lot embeds every one), and one size plot
     assert sum(1 for tag, _, _ in page.elements if tag == "img") == 2 * len(names) + 1
 
 

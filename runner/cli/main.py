@@ -2,7 +2,7 @@
 
 The commands live in :mod:`~lotproof.runner.cli.method` (check, steps, schema),
 :mod:`~lotproof.runner.cli.runs` (run, rerun, demo, cache),
-:mod:`~lotproof.runner.cli.record` (verify, keygen, export, diff, compare),
+:mod:`~lotproof.runner.cli.record` (verify, approve, keygen, export, diff, compare),
 :mod:`~lotproof.runner.cli.show` (report, preview) and :mod:`~lotproof.runner.cli.study`
 (validate); each is a thin shell over a
 function of the stages below. Exit codes are those of :mod:`lotproof.runner.errors`,
@@ -47,6 +47,7 @@ for _command in (
     runs.cache,
     runs.demo,
     record.verify,
+    record.approve,
     record.keygen_command,
     record.export,
     record.diff,

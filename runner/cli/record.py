@@ -1,6 +1,7 @@
-"""Commands on run records: ``verify``, ``keygen``, ``export``, ``diff``, ``compare``.
+"""Commands on run records: ``verify``, ``approve``, ``keygen``, ``export``, ``diff``, ``compare``.
 
-Each is a thin shell over :mod:`lotproof.runner.record.ledger`, :mod:`lotproof.runner.record.export`,
+Each is a thin shell over :mod:`lotproof.runner.record.verify`,
+:mod:`lotproof.runner.jobs.approve`, :mod:`lotproof.runner.record.export`,
 :mod:`lotproof.runner.recipe.diff` and :mod:`lotproof.runner.record.compare`.
 """
 
@@ -19,7 +20,7 @@ from lotproof.runner.errors import EXIT_INVALID, RecipeError
 from lotproof.runner.files import write_file
 from lotproof.runner.record.layout import inside_run_folder
 
-__all__ = ["compare", "diff", "export", "keygen_command", "verify"]
+__all__ = ["approve", "compare", "diff", "export", "keygen_command", "verify"]
 
 _STATUS_STYLE = {"intact": "green", "altered": "bold red", "unfinished": "yellow"}
 
@@ -41,6 +42,9 @@ def _number(value: float | None) -> str:
 # ---------------------------------------------------------------- verify
 
 
+_TRUST_HELP = "folder of trusted public keys (PEM) [default: $LOTPROOF_TRUST]"
+
+
 @click.command()
 @click.argument("run", type=click.Path(file_okay=False, path_type=Path))
 @click.option(
@@ -48,7 +52,16 @@ def _number(value: float | None) -> str:
     "key",
     type=click.Path(dir_okay=False, path_type=Path),
     default=None,
-    help="Ed25519 public key (PEM): check the signature of the seal (seal.sig)",
+    help="Ed25519 public key (PEM): check the signature of the seal (seal.sig), and the "
+    "approvals this key signed",
+)
+@click.option(
+    "--trust",
+    type=click.Path(file_okay=False, path_type=Path),
+    envvar="LOTPROOF_TRUST",
+    default=None,
+    help="folder of trusted public keys (PEM): every approval must be signed by one of them; "
+    "seal.sig, when there, too [default: $LOTPROOF_TRUST]",
 )
 @click.option(
     "--seal",
@@ -56,19 +69,35 @@ def _number(value: float | None) -> str:
     default=None,
     help="the seal printed at the end of the run: check the record ends in it",
 )
+@click.option(
+    "--approval",
+    "approval",
+    default=None,
+    metavar="HASH",
+    help="the hash `lotproof approve` printed: check that approval record is still there",
+)
 @click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
-def verify(run: Path, key: Path | None, seal: str | None, as_json: bool) -> None:
-    """Check that RUN's record is intact: the ledger chain, every file, the signature.
+def verify(
+    run: Path,
+    key: Path | None,
+    trust: Path | None,
+    seal: str | None,
+    approval: str | None,
+    as_json: bool,
+) -> None:
+    """Check that RUN's record is intact: the ledger chain, every file, the signature, and
+    the review and release records (who signed what, and when).
 
-    Exit 0 intact; 4 altered (the first failing line or file is named first) or
-    unfinished (the run never ended).
+    Exit 0 intact; 4 altered (the first failing line or file is named first: an
+    approval removed, reordered or altered too) or unfinished (the run never ended);
+    2 a key or trust folder cannot be read.
     """
     from lotproof.runner.record.verify import verify_run
 
     if not run.is_dir():
         stderr().print(Text(f"{run}: no such run folder"))
         raise SystemExit(EXIT_INVALID)
-    report = verify_run(run, key, expected_seal=seal)
+    report = verify_run(run, key, expected_seal=seal, trust=trust, expected_approval=approval)
     if as_json:
         emit_json(report.as_dict())
         raise SystemExit(report.exit_code)
@@ -81,12 +110,106 @@ def verify(run: Path, key: Path | None, seal: str | None, as_json: bool) -> None
         f"{report.events} ledger events, {report.checked_files} files checked, "
         f"signature: {report.signature}"
     )
+    if report.approvals:
+        console.print("approvals (signed after the run, beside the sealed files):")
+        for a in report.approvals:
+            checked = {
+                "valid": f"signature valid ({a.key_file})",
+                "invalid": "SIGNATURE INVALID",
+                "unknown key": "signed by a key not in the trust folder",
+                "not checked": "signature not checked (give --trust DIR or --key PUB)",
+            }[a.check]
+            console.print(Text(f"  {a.seq}. {a.role} by {a.name} at {a.time_utc}; {checked}"))
+            console.print(f"     key {a.key}")
+            if a.comment:
+                console.print(Text(f"     comment: {a.comment}"))
+        console.print(f"last approval: {report.last_approval}")
+    else:
+        console.print("approvals: none (not reviewed, not released)")
     if report.problems:
         table = _table("problems, first first", ("#", "problem"))
         for i, problem in enumerate(report.problems, 1):
             table.add_row(str(i), Text(problem))
         console.print(table)
     raise SystemExit(report.exit_code)
+
+
+# ---------------------------------------------------------------- approve
+
+
+@click.command()
+@click.argument("target", metavar="RUN|RECIPE", type=click.Path(exists=True, path_type=Path))
+@click.option(
+    "--key",
+    "key",
+    type=click.Path(dir_okay=False, exists=True, path_type=Path),
+    required=True,
+    help="your Ed25519 private key (from `lotproof keygen`)",
+)
+@click.option(
+    "--role",
+    type=click.Choice(["reviewed", "released"]),
+    default=None,
+    help="for a run: what your signature means (a release needs a review before it)",
+)
+@click.option("--name", "name", required=True, help="your printed name, as it is to appear")
+@click.option("--comment", default="", help="a comment signed with the approval")
+@click.option("--json", "as_json", is_flag=True, help="print one JSON document on stdout")
+def approve(
+    target: Path, key: Path, role: str | None, name: str, comment: str, as_json: bool
+) -> None:
+    """Sign RUN's review or release, or approve RECIPE's exact bytes for use.
+
+    A run (a folder): --role reviewed or released; the signed record is added to
+    RUN/approvals.jsonl beside the sealed files, chained to the one before; the run
+    is never edited. A recipe (a file): writes NAME-rREVISION.approval.json beside it.
+    Exit 0 signed; 2 refused (released before reviewed, released twice, an invalid
+    recipe, a bad key, an approval that exists); 4 the run's record does not verify.
+    """
+    from lotproof.runner.jobs.approve import approve_recipe, approve_run
+
+    if target.is_dir():
+        if role is None:
+            raise click.UsageError("a run's approval needs --role reviewed or --role released")
+        record = approve_run(target, key, role=role, name=name, comment=comment)
+        if as_json:
+            emit_json({"run_dir": str(target), **record.as_dict()})
+            return
+        console = stdout()
+        console.print(Text(f"{record.role} by {record.name} at {record.time_utc}"))
+        console.print(f"key: {record.key}")
+        console.print(f"record {record.seq} of {target}; its hash (keep it): {record.hash}")
+        return
+    if role is not None:
+        raise click.UsageError("--role is for a run; a recipe's approval means approved for use")
+    try:
+        approved = approve_recipe(target, key, name=name, comment=comment)
+    except RecipeError as err:
+        fail_recipe(err, as_json)
+    if as_json:
+        emit_json(
+            {
+                "recipe": str(target),
+                "approval": str(approved.path),
+                "sha256": approved.sha256,
+                "name": approved.name,
+                "revision": approved.revision,
+                "approver": approved.approver,
+                "time_utc": approved.time_utc,
+                "key": approved.key,
+            }
+        )
+        return
+    console = stdout()
+    console.print(
+        Text(
+            f"{approved.name} r{approved.revision} approved by {approved.approver} at "
+            f"{approved.time_utc}"
+        )
+    )
+    console.print(f"recipe sha256: {approved.sha256}")
+    console.print(f"key: {approved.key}")
+    console.print(Text(f"wrote {approved.path}"))
 
 
 # ---------------------------------------------------------------- keygen

@@ -25,6 +25,7 @@ from lotproof.runner.jobs.run import run_lot
 from lotproof.runner.lot.base import ExecutorError
 from lotproof.runner.lot.choose import EXECUTOR_KINDS, open_executor
 from lotproof.runner.recipe.load import load_recipe
+from lotproof.runner.recipe.lotsheet import lot_details
 from lotproof.runner.record.folder import CAUTION
 from lotproof.runner.record.limits import FAIL
 
@@ -73,6 +74,16 @@ def _print_summary(summary: Any) -> None:
         images.add_row(r.id, mark(verdicts.image_verdict(r.id)), *cells, Text(r.reason))
     console.print(images)
     console.print(Text("lot verdict: ", style="bold") + mark(verdicts.lot))
+    approval = summary.recipe_approval
+    if approval is not None:
+        console.print(
+            Text(
+                f"recipe approved by {approval.approver} at {approval.time_utc} "
+                f"(key {approval.key})"
+            )
+        )
+    elif summary.approval_note:
+        console.print(Text(f"recipe not approved: {summary.approval_note}", style="yellow"))
     console.print(f"run folder: {summary.run_dir}")
     console.print(f"seal: {summary.seal}" + (" (signed)" if summary.signed else ""))
     console.print(Text(CAUTION, style="dim"))
@@ -93,11 +104,17 @@ def run_recipe(
     scheduler: str | None = None,
     workers: int | None = None,
     db: str | None = None,
+    details: dict[str, str | None] | None = None,
+    station: str | None = None,
+    trust: Path | None = None,
+    require_approved: bool = False,
 ) -> int:
     from lotproof.runner.jobs.run import usable_cores
 
     try:
         checked = load_recipe(recipe)
+        # every lot's sheet is checked before the first lot runs
+        lot_sheets = {lot: lot_details(lot, options=details, station=station) for lot in lots}
     except RecipeError as err:
         fail_recipe(err, as_json)
 
@@ -123,7 +140,12 @@ def run_recipe(
                     err_console,
                     documents,
                     codes,
-                    db,
+                    options={
+                        "details": lot_sheets[lot],
+                        "trust": trust,
+                        "require_approved": require_approved,
+                        "db": db,
+                    },
                 )
     except ExecutorError as err:
         raise click.UsageError(str(err)) from None
@@ -148,7 +170,7 @@ def _run_one(
     err_console: Console,
     documents: list[Any],
     codes: list[int],
-    db: str | None = None,
+    options: dict[str, Any] | None = None,
 ) -> None:
 
     progress = None
@@ -210,7 +232,7 @@ def _run_one(
             sign=sign,
             on_start=started,
             on_image=done,
-            db=db,
+            **(options or {}),  # the lot's details, the recipe's approval, the catalogue
         )
     finally:
         if progress is not None:
@@ -276,6 +298,32 @@ def _run_one(
     default=None,
     help="worker processes for --executor dask-local [default: usable cores]",
 )
+@click.option("--customer", default=None, help="the customer the lot is tested for")
+@click.option("--order", default=None, help="the order or purchase order number")
+@click.option(
+    "--spec", "specification", default=None, help="the specification: document and revision"
+)
+@click.option("--sample", default=None, help="what the sample is")
+@click.option("--operator", default=None, help="who runs it [default: the login name]")
+@click.option("--note", default=None, help="a free-text note for the certificate")
+@click.option(
+    "--station",
+    envvar="LOTPROOF_STATION",
+    default=None,
+    help="the lab's name for this workstation [default: $LOTPROOF_STATION]",
+)
+@click.option(
+    "--trust",
+    type=click.Path(file_okay=False, path_type=Path),
+    envvar="LOTPROOF_TRUST",
+    default=None,
+    help="folder of trusted public keys: record the recipe's approval [default: $LOTPROOF_TRUST]",
+)
+@click.option(
+    "--require-approved",
+    is_flag=True,
+    help="refuse (exit 2, nothing run) a recipe without a valid approval by a trusted key",
+)
 @click.option(
     "--db",
     default=None,
@@ -295,6 +343,15 @@ def run(
     executor_kind: str,
     scheduler: str | None,
     workers: int | None,
+    customer: str | None,
+    order: str | None,
+    specification: str | None,
+    sample: str | None,
+    operator: str | None,
+    note: str | None,
+    station: str | None,
+    trust: Path | None,
+    require_approved: bool,
     db: str | None,
     as_json: bool,
     quiet: bool,
@@ -303,8 +360,11 @@ def run(
 
     Each finished run is recorded in the catalogue of runs (`lotproof history`).
 
-    Exit 0 when every limit passed, 1 when a limit failed, 3 when an image could not
-    be analysed (the lot is incomplete), 2 when the recipe is invalid.
+    The lot's details for its certificate come from the options and/or its lot
+    sheet (LOT/lot.yaml, or LOT.lot.yaml beside it); an option replaces the
+    sheet's value. Exit 0 when every limit passed, 1 when a limit failed, 3 when
+    an image could not be analysed (the lot is incomplete), 2 when the recipe, a
+    lot sheet or an option is invalid, or the recipe is not approved as required.
     """
     raise SystemExit(
         run_recipe(
@@ -321,6 +381,17 @@ def run(
             scheduler=scheduler,
             workers=workers,
             db=db,
+            details={
+                "customer": customer,
+                "order": order,
+                "specification": specification,
+                "sample": sample,
+                "operator": operator,
+                "note": note,
+            },
+            station=station,
+            trust=trust,
+            require_approved=require_approved,
         )
     )
 

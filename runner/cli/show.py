@@ -38,12 +38,23 @@ __all__ = ["preview", "report"]
     default=None,
     help="file to write [default: RUN-report.html, or RUN-report.pdf with --pdf, beside RUN]",
 )
-def report(run: Path, pdf: bool, out: Path | None) -> None:
-    """Rebuild RUN's report from its finished record, with the seal, beside the run folder.
+@click.option(
+    "--trust",
+    type=click.Path(file_okay=False, path_type=Path),
+    envvar="LOTPROOF_TRUST",
+    default=None,
+    help="folder of trusted public keys: check every review and release signature "
+    "[default: $LOTPROOF_TRUST]",
+)
+def report(run: Path, pdf: bool, out: Path | None, trust: Path | None) -> None:
+    """Rebuild RUN's certificate from its finished record, with the seal and every review
+    and release, beside the run folder.
 
-    The run's own report.html (sealed with the run) says where its seal is; this one
-    shows the seal and whether the record verifies. Nothing in RUN is rewritten.
-    Exit 0 written; 2 not a run folder; 3 no PDF could be made; 4 the record did not verify.
+    The run's own report.html (sealed with the run) says where its seal and its
+    signatures are; this one shows them and whether the record verifies (with
+    --trust, whether each signature is by a trusted key). Nothing in RUN is
+    rewritten. Exit 0 written; 2 not a run folder; 3 no PDF could be made; 4 the
+    record did not verify.
     """
     from lotproof.runner.show.report import (
         ReportError,
@@ -73,14 +84,14 @@ def report(run: Path, pdf: bool, out: Path | None) -> None:
         raise SystemExit(EXIT_NO_PDF)
     if pdf:
         with tempfile.TemporaryDirectory(prefix="lotproof-report-") as tmp:
-            html_file, status = rebuild_report(run, Path(tmp) / "report.html")
+            html_file, status = rebuild_report(run, Path(tmp) / "report.html", trust=trust)
             try:
                 html_to_pdf(html_file, target, browser)
             except (RuntimeError, OSError) as err:
                 stderr().print(Text(f"error: no PDF was made: {err}"))
                 raise SystemExit(EXIT_NO_PDF) from None
     else:
-        _, status = rebuild_report(run, target)
+        _, status = rebuild_report(run, target, trust=trust)
     console = stdout()
     console.print(Text(f"report: {target}"))
     if status != "intact":

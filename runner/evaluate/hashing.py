@@ -31,6 +31,7 @@ from lotproof.steps import Output, StepParams, Table
 
 __all__ = [
     "KEY_FORMAT",
+    "NOT_INSTALLED",
     "canonical_json",
     "content_checksum",
     "file_sha256",
@@ -105,12 +106,16 @@ def content_checksum(data: Any) -> str:
     raise TypeError(f"cannot checksum a {type(data).__name__}")
 
 
+#: the version recorded for a library that is not installed
+NOT_INSTALLED = "not installed"
+
+
 @cache
 def _version(distribution: str) -> str:
     try:
         return metadata.version(distribution)
     except metadata.PackageNotFoundError:
-        return "not installed"
+        return NOT_INSTALLED
 
 
 _DISTRIBUTIONS = {"skimage": "scikit-image", "cv2": "opencv-python-headless", "yaml": "PyYAML"}

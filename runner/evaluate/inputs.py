@@ -50,6 +50,7 @@ from typing import Any, cast
 import numpy as np
 
 from lotproof.runner.errors import InputError
+from lotproof.runner.recipe.lotsheet import LOT_SHEET
 from lotproof.runner.recipe.patterns import check_pattern, glob_to_regex
 from lotproof.steps.units import FILE_LENGTH_UNITS, LENGTH_UNITS
 
@@ -154,6 +155,8 @@ def find_samples(lot: Path, inputs: dict[str, str]) -> list[Sample]:
             except OSError:
                 pass  # a symlink loop: keep it, reading will say what is wrong
             rel = path.relative_to(lot).as_posix()
+            if rel == LOT_SHEET:
+                continue  # the lot's details, never an image of it
             m = regex.match(rel)
             key = m.groups() if m else (rel,)
             found[key] = path

@@ -18,6 +18,7 @@ __all__ = [
     "mask_display",
     "outline_overlay",
     "preview_arrays",
+    "shown_slice",
     "to_display",
 ]
 
@@ -45,10 +46,24 @@ def _block_mean(image: np.ndarray, f: int) -> np.ndarray:
     return out / (f * f)
 
 
+def shown_slice(shape: tuple[int, ...] | list[int]) -> int | None:
+    """The slice (index from 0 along the first axis) a volume's previews show: the middle one.
+
+    None for a 2-D image, gray or colour (a last axis of 3 or 4 is colour, not depth).
+    """
+    if len(shape) == 3 and shape[-1] not in (3, 4):
+        return int(shape[0]) // 2
+    return None
+
+
 def to_display(image: np.ndarray, max_side: int = PREVIEW_SIDE) -> np.ndarray:
-    """A gray or colour image as uint8, shrunk by an integer factor, contrast stretched."""
-    if image.ndim == 3 and image.shape[-1] not in (3, 4):
-        image = image[image.shape[0] // 2]  # a volume: its middle slice
+    """A gray or colour image as uint8, shrunk by an integer factor, contrast stretched.
+
+    A volume shows its middle slice (:func:`shown_slice`).
+    """
+    middle = shown_slice(image.shape)
+    if middle is not None:
+        image = image[middle]
     if image.ndim == 3:
         image = image[..., :3].astype(np.float64) @ np.array([0.299, 0.587, 0.114])
     f = _shrink_factor(image.shape, max_side)

@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import os
 from collections import defaultdict
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -23,6 +23,7 @@ from lotproof.runner.evaluate.hashing import file_sha256
 from lotproof.runner.evaluate.inputs import Sample
 from lotproof.runner.jobs.run import RunSummary, run_lot
 from lotproof.runner.recipe.load import parse_recipe
+from lotproof.runner.recipe.lotsheet import LotDetails, lot_details
 from lotproof.runner.record.layout import IMAGES_FILE, OBJECTS_FILE, RECIPE_FILE
 from lotproof.runner.record.reading import RunFolder
 from lotproof.runner.record.verify import verify_run
@@ -199,10 +200,25 @@ def rerun(
         store=NullStore(),
         samples=samples,
         rerun_of=report.seal,
+        details=_recorded_details(events, base),
     )
     result = RerunReport(original=run_dir, rerun=summary, environment=env_diffs)
     _compare(folder, events, summary, result)
     return result
+
+
+def _recorded_details(events: list[dict[str, Any]], base: Path) -> LotDetails:
+    """The lot's details as recorded (a rerun certifies the same lot), made by whoever reruns.
+
+    The rerun reads no lot sheet: it uses only what the run folder holds. A record
+    without a ``lot`` event gives the bare details (the lot and the operator).
+    """
+    now = lot_details(base, sheet=False)
+    event = next((e for e in events if e.get("type") == "lot"), None)
+    if event is None:
+        return now
+    recorded = LotDetails.from_event(event)
+    return replace(recorded, path=now.path, operator=now.operator, station=None)
 
 
 def _compare(

@@ -24,12 +24,18 @@ from lotproof.runner.lot.base import LotExecutor, usable_cores
 from lotproof.runner.lot.local import LocalExecutor
 from lotproof.runner.recipe.git import git_info
 from lotproof.runner.recipe.load import load_recipe
+from lotproof.runner.recipe.lotsheet import LotDetails, lot_details
 from lotproof.runner.recipe.model import Recipe
 from lotproof.runner.record.folder import create_run_folder, write_previews, write_run_files
 from lotproof.runner.record.layout import LEDGER_FILE, SUMS_FILE, image_folders, inside_run_folder
 from lotproof.runner.record.ledger import LedgerWriter, write_sha256sums
 from lotproof.runner.record.limits import FAIL, Verdicts, evaluate_limits
-from lotproof.runner.record.signing import load_private_key, write_signature
+from lotproof.runner.record.recipe_approval import (
+    RecipeApproval,
+    RecipeNotApproved,
+    find_recipe_approval,
+)
+from lotproof.runner.record.signing import load_private_key, load_trust, write_signature
 from lotproof.runner.show.report import write_report
 
 __all__ = ["RunSummary", "WritesIntoLotError", "exit_code_for", "run_lot", "usable_cores"]
@@ -76,6 +82,10 @@ class RunSummary:
     catalogue: str | None = None
     #: what people should know about the run beyond its verdicts (e.g. a catalogue miss)
     notes: list[str] = field(default_factory=list)
+    details: LotDetails | None = None
+    #: the recipe's approval found with a trust folder, or why there was none
+    recipe_approval: RecipeApproval | None = None
+    approval_note: str = ""
 
     @property
     def exit_code(self) -> int:
@@ -104,6 +114,14 @@ class RunSummary:
             },
             "seal": self.seal,
             "signed": self.signed,
+            "lot_details": None if self.details is None else self.details.document(),
+            "recipe_approval": None
+            if self.recipe_approval is None
+            else {
+                "approver": self.recipe_approval.approver,
+                "time_utc": self.recipe_approval.time_utc,
+                "key": self.recipe_approval.key,
+            },
             "steps": self.step_counts(),
             "cache": self.cache_location,
             "catalogue": self.catalogue,
@@ -185,6 +203,28 @@ def _image_events(ledger: LedgerWriter, recipe: Recipe, result: ImageResult, fol
     ledger.append_group(events)
 
 
+def _recipe_approval(
+    recipe: Recipe, trust: Path | None, required: bool
+) -> tuple[RecipeApproval | None, str]:
+    """The recipe's valid approval by a key of ``trust`` (or None and why); refused when required."""
+    if trust is None:
+        if required:
+            raise RecipeNotApproved(
+                "--require-approved needs a trust folder of public keys (--trust DIR or "
+                "LOTPROOF_TRUST); nothing was run"
+            )
+        return None, ""
+    keys = load_trust(trust)
+    try:
+        return find_recipe_approval(recipe, keys), ""
+    except RecipeNotApproved as err:
+        if required:
+            raise RecipeNotApproved(
+                f"{recipe.label} is not approved: {err}; nothing was run"
+            ) from None
+        return None, str(err)
+
+
 def run_lot(
     recipe: Recipe | str | Path,
     lot: str | Path,
@@ -200,6 +240,9 @@ def run_lot(
     on_image: Callable[[ImageResult], None] | None = None,
     db: str | None = None,
     catalogue: bool = True,
+    details: LotDetails | None = None,
+    trust: Path | None = None,
+    require_approved: bool = False,
 ) -> RunSummary:
     """Run ``recipe`` on every image of ``lot`` and write a new run folder under ``out``.
 
@@ -208,6 +251,12 @@ def run_lot(
     Ed25519 key to sign the seal with. The run folder and its
     ledger are created before the first image is read, so an interrupted run leaves
     a folder that ``verify`` reports as unfinished.
+
+    ``details`` are the lot's details for its certificate (default: the lot's
+    lot sheet, if it has one, and the login name as operator), recorded in the
+    ledger's ``lot`` event and in ``verdicts.json``. With ``trust`` (a folder of
+    public keys) the recipe's approval is looked for and, when valid, recorded
+    (``recipe-approval`` event); ``require_approved`` refuses a recipe without one.
 
     The finished, sealed run is then recorded in the catalogue of runs (``db``, a
     database URL; default ``$LOTPROOF_DB`` or ``OUT/history.sqlite``; ``catalogue=False``
@@ -223,6 +272,11 @@ def run_lot(
         When the lot folder cannot be used at all (nothing ran).
     WritesIntoLotError
         When ``out`` or the cache folder lies inside the lot (nothing ran).
+    LotSheetError
+        When the lot's lot sheet is invalid (nothing ran).
+    RecipeNotApproved
+        With ``require_approved``, when the recipe has no valid approval by a
+        key of ``trust`` (nothing ran).
     """
     if not isinstance(recipe, Recipe):
         recipe = load_recipe(recipe)
@@ -241,6 +295,9 @@ def run_lot(
         samples = find_samples(lot, recipe.inputs)
     if sign is not None:
         load_private_key(sign)  # a bad key fails before anything runs
+    if details is None:
+        details = lot_details(lot)
+    approval, approval_note = _recipe_approval(recipe, trust, require_approved)
     run_dir = create_run_folder(Path(out), recipe)
     with LedgerWriter(run_dir / LEDGER_FILE) as ledger:
         start = environment()
@@ -258,6 +315,9 @@ def run_lot(
             revision=recipe.revision,
             git=git_info(Path(recipe.path)),
         )
+        ledger.append("lot", **details.event())
+        if approval is not None:
+            ledger.append("recipe-approval", **approval.event())
         if on_start is not None:
             on_start(len(samples))
 
@@ -274,7 +334,7 @@ def run_lot(
 
         results = executor.map(recipe, samples, lot, store, done)
         verdicts = evaluate_limits(recipe, results)
-        files = write_run_files(run_dir, recipe, results, verdicts, lot, folders)
+        files = write_run_files(run_dir, recipe, results, verdicts, lot, folders, details)
         files += sorted(figures)
         for name, lv in verdicts.limits.items():
             ledger.append(
@@ -294,6 +354,8 @@ def run_lot(
             path = run_dir / name
             ledger.append("output", path=name, sha256=file_sha256(path), size=path.stat().st_size)
         summary = RunSummary(run_dir, recipe, lot, results, verdicts, files, store.location)
+        summary.details, summary.recipe_approval = details, approval
+        summary.approval_note = approval_note
         seal = ledger.append_end(time_utc=utc_now(), exit_code=summary.exit_code)
     summary.seal = seal
     if sign is not None:

@@ -28,7 +28,7 @@ from lotproof.runner.recipe.model import (
     StepDef,
 )
 from lotproof.runner.recipe.problems import ProblemCollector, describe, suggest
-from lotproof.runner.recipe.quantities import BoundError, parse_bound
+from lotproof.runner.recipe.quantities import DIMENSIONLESS, BoundError, parse_bound
 from lotproof.runner.recipe.yamlpos import MAX_RECIPE_BYTES, load_yaml
 from lotproof.steps import REGISTRY
 
@@ -329,6 +329,12 @@ def _check_limit(
             path, f"the lower bound {bounds['low']:g} is above the upper bound {bounds['high']:g}"
         )
         ok = False
+    if limit.display == "percent" and unit != DIMENSIONLESS:
+        collector.add(
+            path + ("display",),
+            f"percent shows a dimensionless fraction; {limit.value} is in {unit}",
+        )
+        ok = False
     if not ok:
         return None
     return LimitDef(
@@ -340,4 +346,5 @@ def _check_limit(
         low=bounds["low"],
         high=bounds["high"],
         written=written,
+        display=limit.display,
     )

@@ -16,6 +16,7 @@ from lotproof.steps import Length, StepParams
 
 __all__ = [
     "CALIBRATION_RULES",
+    "DISPLAY_CHOICES",
     "FORMAT",
     "MAX_REVISION",
     "MAX_STEPS",
@@ -44,6 +45,9 @@ MAX_REVISION = 2**53 - 1
 #: the most steps a recipe may have (a method has tens; the bound keeps every check and
 #: evaluation within fixed depth)
 MAX_STEPS = 400
+#: how a limit's value and bounds are shown to people (the files keep the value as measured):
+#: number as it is, percent a dimensionless fraction times 100 with a % sign (0.18 -> 18 %)
+DISPLAY_CHOICES = ("number", "percent")
 #: keys of a step that are not parameters of its kind
 STEP_KEYS = ("apply", "to", "keep")
 
@@ -69,6 +73,12 @@ class LimitModel(_Strict):
     max: int | float | str | None = Field(None, description="upper bound, inclusive, with unit")
     range: list[int | float | str] | None = Field(
         None, min_length=2, max_length=2, description="[lower, upper], inclusive, with units"
+    )
+    display: Literal[DISPLAY_CHOICES] = Field(  # type: ignore[valid-type]
+        "number",
+        description="how the report shows the value and its bounds: number as measured, or "
+        "percent for a dimensionless fraction (0.18 shown as 18 %); the files keep the value "
+        "as measured",
     )
 
     @model_validator(mode="after")
@@ -157,6 +167,8 @@ class LimitDef:
     high: float | None
     #: the bounds as written
     written: dict[str, Any]
+    #: one of DISPLAY_CHOICES
+    display: str = "number"
 
 
 @dataclass(frozen=True)

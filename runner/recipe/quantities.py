@@ -7,6 +7,10 @@ becomes 60. A bare number on a value that has a unit is refused, for the same
 reason a bare number is refused where a length belongs. A bound takes the same
 unit spellings as a step parameter (:mod:`lotproof.steps.units`), and their
 reciprocals for densities (``1/mm2``, ``/um``).
+
+A bound on a dimensionless value (a fraction) may be written in percent:
+``max: 18 %`` is divided by 100 and reads as ``max: 0.18``. ``%`` is the one
+sign a dimensionless bound takes; any other unit on it is refused.
 """
 
 from __future__ import annotations
@@ -16,9 +20,11 @@ import re
 
 from lotproof.steps.units import unit_factor, unit_spellings
 
-__all__ = ["DIMENSIONLESS", "BoundError", "parse_bound"]
+__all__ = ["DIMENSIONLESS", "PERCENT", "BoundError", "parse_bound"]
 
 DIMENSIONLESS = "-"
+#: the sign of a dimensionless bound written in hundredths (``18 %`` is 0.18)
+PERCENT = "%"
 
 _BOUND = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*(\S.*?)?\s*$")
 
@@ -50,9 +56,12 @@ def parse_bound(raw: object, unit: str) -> float:
                     f"a bare number where a value in {unit} is bounded (got {raw!r}); "
                     f"write {number} {unit}"
                 )
+        elif unit == DIMENSIONLESS and given == PERCENT:
+            value /= 100.0
         elif unit == DIMENSIONLESS:
             raise BoundError(
-                f"the value is dimensionless; write the bound without a unit (got {raw!r})"
+                f"the value is dimensionless; write the bound without a unit (got {raw!r}), "
+                "or in percent (18 %)"
             )
         else:
             factor = unit_factor(given, unit)

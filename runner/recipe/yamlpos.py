@@ -259,11 +259,12 @@ def _reader_problem(err: yaml.reader.ReaderError) -> str:
     return f"control character U+{code:04X} is not allowed in YAML text; remove it"
 
 
-def load_yaml(text: str) -> LoadedYaml:
+def load_yaml(text: str, document: str = "recipe") -> LoadedYaml:
     """Parse ``text`` strictly; syntax problems are returned, never raised.
 
     On a syntax error ``data`` is ``None`` and ``problems`` holds one entry with
-    the position PyYAML reported.
+    the position PyYAML reported. ``document`` names what the text is in messages
+    (``recipe``, ``lot sheet``).
     """
     out = LoadedYaml(data=None)
     lines = _Lines(text)
@@ -279,7 +280,7 @@ def load_yaml(text: str) -> LoadedYaml:
         mark = err.problem_mark or err.context_mark
         text_of_err = str(err)
         if "expected a single document" in text_of_err:
-            what = "a recipe is one YAML document; remove the '---' separator and what follows"
+            what = f"a {document} is one YAML document; remove the '---' separator and what follows"
         elif "'\\t'" in text_of_err:
             what = "tab characters cannot indent YAML; use spaces"
         elif err.context and err.problem:
@@ -306,9 +307,11 @@ def load_yaml(text: str) -> LoadedYaml:
     finally:
         loader.dispose()
     if node is None:
-        out.problems.append(YamlProblem(Position(1, 1), "the recipe is empty"))
+        out.problems.append(YamlProblem(Position(1, 1), f"the {document} is empty"))
         return out
     out.data = _build(node, (), Position(1, 1), out, lines)
     if out.data is None and not out.problems:
-        out.problems.append(YamlProblem(lines.mark(node.start_mark), "the recipe is empty (null)"))
+        out.problems.append(
+            YamlProblem(lines.mark(node.start_mark), f"the {document} is empty (null)")
+        )
     return out

@@ -21,6 +21,7 @@ import numpy as np
 from lotproof.runner.errors import RunFolderError
 from lotproof.runner.evaluate.image import ImageResult, resolve_params
 from lotproof.runner.files import write_file
+from lotproof.runner.recipe.lotsheet import LotDetails
 from lotproof.runner.recipe.model import Recipe
 from lotproof.runner.record.layout import (
     IMAGES_FILE,
@@ -46,6 +47,7 @@ __all__ = [
     "create_run_folder",
     "format_number",
     "value_columns",
+    "verdicts_document",
     "write_bytes",
     "write_run_files",
 ]
@@ -293,6 +295,7 @@ def _resolved(recipe: Recipe, results: list[ImageResult]) -> dict[str, Any]:
                 "max": limit.high,
                 "as_written": limit.written,
                 "inclusive": True,
+                "display": limit.display,
             }
             for name, limit in recipe.limits.items()
         },
@@ -341,8 +344,13 @@ def write_previews(run: Path, result: ImageResult, folders: Mapping[str, str]) -
 
 
 def verdicts_document(
-    recipe: Recipe, results: list[ImageResult], verdicts: Verdicts
+    recipe: Recipe,
+    results: list[ImageResult],
+    verdicts: Verdicts,
+    details: LotDetails | None = None,
 ) -> dict[str, Any]:
+    """``verdicts.json``: the lot verdict, the method, the lot's details, every limit."""
+    lot: dict[str, Any] = {} if details is None else {"lot": details.document()}
     return {
         "lot_verdict": verdicts.lot,
         "method": {
@@ -350,6 +358,7 @@ def verdicts_document(
             "revision": recipe.revision,
             "recipe_sha256": recipe.sha256,
         },
+        **lot,
         "images": verdicts.images,
         "incomplete_images": {r.id: r.reason for r in results if r.status != "ok"},
         "image_verdicts": {r.id: verdicts.image_verdict(r.id) for r in results},
@@ -366,11 +375,13 @@ def write_run_files(
     verdicts: Verdicts,
     lot: Path,
     folders: Mapping[str, str] | None = None,
+    details: LotDetails | None = None,
 ) -> list[str]:
     """Write every file of the run folder; returns their paths relative to ``run``.
 
     ``folders`` names each image inside the run folder (default: the lot's
-    :func:`~lotproof.runner.record.layout.image_folders` of ``results``).
+    :func:`~lotproof.runner.record.layout.image_folders` of ``results``);
+    ``details`` (customer, order, ...) go into ``verdicts.json`` beside the verdicts.
     """
     if folders is None:
         folders = image_folders(r.id for r in results)
@@ -387,7 +398,7 @@ def write_run_files(
     inputs = {r.id: r.inputs for r in results}
     write_bytes(run / INPUTS_FILE, _json(inputs))
     kept = _write_kept(run, results, folders)
-    write_bytes(run / VERDICTS_FILE, _json(verdicts_document(recipe, results, verdicts)))
+    write_bytes(run / VERDICTS_FILE, _json(verdicts_document(recipe, results, verdicts, details)))
     tables = [TABLES_FILE] if extra else []
     return [
         RECIPE_FILE,

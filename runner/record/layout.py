@@ -17,6 +17,8 @@ Layout (see DESIGN.md, "Run record")::
     RUN/ledger.sha256    the sha256 of the whole ledger, in ``sha256sum -c`` form
     RUN/SHA256SUMS       every output file, in ``sha256sum -c`` form
     RUN/seal.sig         the Ed25519 signature of the seal, when signed
+    RUN/approvals.jsonl  review and release records, added after the run: beside the sealed
+                         files, never one of them (each chained and signed; checked by verify)
 
 A validation study (``lotproof validate PLAN``) writes a study folder, sealed the
 same way (``ledger.jsonl``, ``SHA256SUMS``, ``report.html``), with its own files::
@@ -50,6 +52,8 @@ from datetime import datetime
 from pathlib import Path, PurePosixPath
 
 __all__ = [
+    "APPROVALS_FILE",
+    "BESIDE_THE_SEAL",
     "DESIGN_FOLDER",
     "FIGURES_FOLDER",
     "IMAGES_FILE",
@@ -98,6 +102,10 @@ LEDGER_FILE = "ledger.jsonl"
 LEDGER_SUM_FILE = "ledger.sha256"
 SUMS_FILE = "SHA256SUMS"
 SIGNATURE_FILE = "seal.sig"
+APPROVALS_FILE = "approvals.jsonl"
+#: the files of a run folder that no output event records: the ledger itself and what is
+#: added beside the sealed files (the ledger's own sum, the seal's signature, the approvals)
+BESIDE_THE_SEAL = (LEDGER_FILE, LEDGER_SUM_FILE, SIGNATURE_FILE, APPROVALS_FILE)
 KEPT_FOLDER = "kept"
 FIGURES_FOLDER = "figures"
 PLAN_FILE = "plan.yaml"

@@ -16,6 +16,12 @@ Event types a run writes, in this order (fields beside ``seq``, ``type``, ``prev
 ``run-start``   tool, python, libraries, platform, cpu, command, user, host, time_utc, lot,
                 cache, executor (and rerun_of on a rerun)
 ``recipe``      path, sha256, name, revision, git ({commit, path_in_repo, modified} or null)
+``lot``         lot_id, path, customer, order, specification, sample, operator, note, station,
+                sheet ({path, sha256} or null): the lot's details for its certificate
+                (:mod:`lotproof.runner.recipe.lotsheet`); a detail not given is null
+``recipe-approval``  file, file_sha256, sha256, name, revision, role, approver, time_utc,
+                comment, key, key_file, signature: the recipe's approval found with a trust
+                folder (:mod:`lotproof.runner.record.recipe_approval`); only when one was
 ``input``       image, input, path, size, sha256, shape, dtype, calibration
 ``step``        image, step, kind, version, to, key, checksum, cache ("computed"|"reused"), seconds
 ``image``       image, status, reason, worker, notes, folder (its safe name in the run folder)
@@ -66,6 +72,8 @@ GENESIS = hashlib.sha256(b"lotproof ledger v1").hexdigest()
 EVENT_TYPES = (
     "run-start",
     "recipe",
+    "lot",
+    "recipe-approval",
     "input",
     "step",
     "image",

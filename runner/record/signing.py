@@ -1,15 +1,24 @@
-"""Keys and signatures: Ed25519 over a run's seal.
+"""Keys and signatures: Ed25519 over a run's seal, approvals and trust folders.
 
 ``lotproof keygen`` makes a key pair; ``run --sign KEY`` writes ``seal.sig``, the
 base64 of the 64-byte Ed25519 signature over the seal's ASCII hex digits; verify
 checks it with the public key. Private keys never sit inside a run folder.
+
+A key is named everywhere by its **fingerprint**: the sha256 of its 32 raw
+public-key bytes, as 64 hex digits (:func:`fingerprint`). Approvals carry the
+fingerprint of the key that signed them (:func:`sign_payload`), and a **trust
+folder** (:func:`load_trust`) is a folder of PEM public keys (``*.pem`` or
+``*.pub``; other files are ignored) by which they are checked. A private key in
+a trust folder is refused: the folder is handed around, a private key never is.
 """
 
 from __future__ import annotations
 
 import base64
+import hashlib
 import os
 import re
+from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -26,17 +35,24 @@ if TYPE_CHECKING:
 
 __all__ = [
     "SigningError",
+    "TrustedKey",
+    "fingerprint",
     "keygen",
     "load_private_key",
     "load_public_key",
+    "load_trust",
     "read_signature",
+    "sign_payload",
     "sign_seal",
+    "signature_matches",
     "write_signature",
 ]
 
 _HEX64 = re.compile(r"^[0-9a-f]{64}$")
 #: a PEM key or a signature file is a few hundred bytes; anything far larger is not one
 _MAX_KEY_BYTES = 64 * 1024
+#: the names a trust folder's public keys have
+_TRUST_SUFFIXES = (".pem", ".pub")
 
 
 class SigningError(LotproofError, ValueError):
@@ -59,6 +75,77 @@ def load_public_key(path: Path) -> Ed25519PublicKey:
     if not isinstance(key, Ed25519PublicKey):
         raise SigningError(f"{path}: not an Ed25519 public key")
     return key
+
+
+def fingerprint(key: Ed25519PublicKey | Ed25519PrivateKey) -> str:
+    """The key's fingerprint: sha256 (hex) of the 32 raw bytes of its public key."""
+    from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
+    from cryptography.hazmat.primitives.serialization import Encoding, PublicFormat
+
+    public = key.public_key() if isinstance(key, Ed25519PrivateKey) else key
+    return hashlib.sha256(public.public_bytes(Encoding.Raw, PublicFormat.Raw)).hexdigest()
+
+
+@dataclass(frozen=True)
+class TrustedKey:
+    """A public key of a trust folder: its file, fingerprint and the key itself."""
+
+    path: Path
+    fingerprint: str
+    key: Ed25519PublicKey
+
+
+def load_trust(folder: Path) -> dict[str, TrustedKey]:
+    """The public keys of the trust folder ``folder``, by fingerprint.
+
+    Every ``*.pem`` and ``*.pub`` file directly in the folder (hidden files and
+    other names are ignored) must be an Ed25519 public key.
+
+    Raises
+    ------
+    SigningError
+        When the folder is missing or holds no key, or a key file is not an
+        Ed25519 public key (a private key there is named as such).
+    """
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise SigningError(f"{folder}: no such trust folder (a folder of PEM public keys)")
+    keys: dict[str, TrustedKey] = {}
+    for path in sorted(folder.iterdir()):
+        if path.name.startswith(".") or path.suffix not in _TRUST_SUFFIXES:
+            continue
+        try:
+            head = read_file(path, max_bytes=_MAX_KEY_BYTES)
+        except OSError as err:
+            raise SigningError(f"{path}: cannot read the key ({err.strerror})") from None
+        if b"PRIVATE KEY" in head:
+            raise SigningError(
+                f"{path}: a private key in the trust folder {folder}; a trust folder holds "
+                "public keys only: remove it (and treat the key as disclosed)"
+            )
+        key = load_public_key(path)
+        found = fingerprint(key)
+        keys.setdefault(found, TrustedKey(path, found, key))
+    if not keys:
+        raise SigningError(f"{folder}: the trust folder holds no public key (*.pem, *.pub)")
+    return keys
+
+
+def sign_payload(private_key: Path, payload: bytes) -> tuple[bytes, str]:
+    """Ed25519 signature (64 raw bytes) over ``payload``, and the signing key's fingerprint."""
+    key = load_private_key(private_key)
+    return key.sign(payload), fingerprint(key)
+
+
+def signature_matches(key: Ed25519PublicKey, signature: bytes, payload: bytes) -> bool:
+    """Whether ``signature`` is ``key``'s Ed25519 signature over ``payload``."""
+    from cryptography.exceptions import InvalidSignature
+
+    try:
+        key.verify(signature, payload)
+    except InvalidSignature:
+        return False
+    return True
 
 
 def load_private_key(path: Path) -> Ed25519PrivateKey:

@@ -1,7 +1,8 @@
 """Checking a run folder against its ledger: ``lotproof verify``.
 
 :func:`verify_run` re-hashes every file the ledger records, checks the chain,
-``SHA256SUMS``, the expected seal and the signature, and lists every file that
+``SHA256SUMS``, the expected seal and the signature, the review and release
+records beside the sealed files (``approvals.jsonl``), and lists every file that
 the ledger does not record. It reports; it never changes the folder.
 """
 
@@ -12,11 +13,15 @@ import os
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Literal
+from typing import TYPE_CHECKING, Any, Literal
 
 from lotproof.runner.errors import EXIT_INTEGRITY
 from lotproof.runner.evaluate.hashing import file_sha256
+from lotproof.runner.files import folder_lock
+from lotproof.runner.record.approvals import Approval, check_approvals
 from lotproof.runner.record.layout import (
+    APPROVALS_FILE,
+    BESIDE_THE_SEAL,
     LEDGER_FILE,
     LEDGER_SUM_FILE,
     PLAN_FILE,
@@ -26,7 +31,16 @@ from lotproof.runner.record.layout import (
     safe_relative,
 )
 from lotproof.runner.record.reading import RunFolder, RunFolderReadError
-from lotproof.runner.record.signing import load_public_key, read_signature
+from lotproof.runner.record.signing import (
+    fingerprint,
+    load_public_key,
+    load_trust,
+    read_signature,
+    signature_matches,
+)
+
+if TYPE_CHECKING:
+    from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
 
 __all__ = ["SignatureStatus", "VerifyReport", "VerifyStatus", "verify_run"]
 
@@ -54,10 +68,17 @@ class VerifyReport:
     checked_files: int = 0
     signature: SignatureStatus = "absent"
     events: int = 0
+    #: the review and release records, in order, each with what checking its signature found
+    approvals: list[Approval] = field(default_factory=list)
 
     @property
     def exit_code(self) -> int:
         return 0 if self.status == "intact" else EXIT_INTEGRITY
+
+    @property
+    def last_approval(self) -> str | None:
+        """The hash of the last approval record (None without approvals)."""
+        return self.approvals[-1].hash if self.approvals else None
 
     def as_dict(self) -> dict[str, Any]:
         return {
@@ -67,6 +88,8 @@ class VerifyReport:
             "signature": self.signature,
             "events": self.events,
             "checked_files": self.checked_files,
+            "approvals": [a.as_dict() for a in self.approvals],
+            "last_approval": self.last_approval,
             "problems": list(self.problems),
         }
 
@@ -143,9 +166,14 @@ def _check_ledger_sum(run_dir: Path, problems: list[str]) -> None:
 
 
 def verify_run(
-    run_dir: Path, public_key: Path | None = None, *, expected_seal: str | None = None
+    run_dir: Path,
+    public_key: Path | None = None,
+    *,
+    expected_seal: str | None = None,
+    trust: Path | None = None,
+    expected_approval: str | None = None,
 ) -> VerifyReport:
-    """Check a run folder against its ledger.
+    """Check a run folder against its ledger, and its approvals against the seal.
 
     Checks, in this order (``problems`` lists what fails in the same order):
 
@@ -161,20 +189,54 @@ def verify_run(
        ASCII hex with Ed25519 (a missing signature is then a failure);
     5. ``ledger.sha256`` holds the sha256 of the whole ledger (a finished run must
        have it: it is what covers the ``run-end`` line, which no later line chains);
-    6. every file in the run folder is in an output event (except the ledger, its
-       checksum file and the signature): others are reported as "not recorded".
-       After ``run-end`` such a file makes the run altered; in a run that never
-       finished it is expected (written after the last event) and the run is
-       unfinished.
+    6. ``approvals.jsonl``, when there is one (see
+       :mod:`lotproof.runner.record.approvals`): every record chains from the
+       seal and the record before, keeps the order of roles, and, when its key
+       is ``public_key`` or in the ``trust`` folder, carries a valid signature
+       (with ``trust``, a record by any other key is a failure); a record with
+       the hash ``expected_approval`` is among them when one is given (the hash
+       ``lotproof approve`` printed: records added after it are fine, removed
+       ones are not). With ``trust`` and no ``public_key``,
+       ``seal.sig`` is checked when present, against every trusted key;
+    7. every file in the run folder is in an output event (except the ledger and
+       the files beside the seal: its checksum file, the signature and the
+       approvals): others are reported as "not recorded". After ``run-end`` such
+       a file makes the run altered; in a run that never finished it is expected
+       (written after the last event) and the run is unfinished.
 
     What this can and cannot detect: any change to one file of the record, the
     ledger's last line included, and any file added or removed. Whoever rewrites
     the ledger *and* recomputes every hash that refers to it (the chain, the
     outputs' sums, ``ledger.sha256``) makes a consistent forgery that only
     ``expected_seal`` (the seal printed at the end of the run), a signature
-    checked with ``public_key``, or a rerun can tell from the original.
+    checked with ``public_key``, or a rerun can tell from the original. Likewise
+    the last approval record is covered only by ``expected_approval``: removing it
+    leaves a shorter chain that is sound in itself.
+
+    Raises
+    ------
+    SigningError
+        When ``public_key`` or the ``trust`` folder cannot be read (exit 2).
     """
     run_dir = Path(run_dir)
+    # shared: an approval being added (under the exclusive lock) is waited for, never half seen
+    with folder_lock(run_dir, exclusive=False):
+        return _verify(run_dir, public_key, expected_seal, trust, expected_approval)
+
+
+def _verify(
+    run_dir: Path,
+    public_key: Path | None,
+    expected_seal: str | None,
+    trust: Path | None,
+    expected_approval: str | None,
+) -> VerifyReport:
+    keys: dict[str, tuple[Ed25519PublicKey, str]] = {}
+    if trust is not None:
+        keys.update({f: (t.key, str(t.path)) for f, t in load_trust(trust).items()})
+    given = load_public_key(public_key) if public_key is not None else None
+    if given is not None:
+        keys[fingerprint(given)] = (given, str(public_key))
     problems: list[str] = []
     try:
         lines = RunFolder(run_dir).ledger_lines(problems)
@@ -213,7 +275,7 @@ def verify_run(
         if not isinstance(digest, str) or not _HEX64.match(digest):
             problems.append(f"{where}: output {name} has no sha256")
             continue
-        if name in (LEDGER_FILE, LEDGER_SUM_FILE, SIGNATURE_FILE):
+        if name in BESIDE_THE_SEAL:
             problems.append(f"{where}: {name} cannot be an output of its own record")
             continue
         recorded[name] = digest
@@ -235,7 +297,7 @@ def verify_run(
         f"{path}: not recorded in the ledger"
         + (" (written after its last event)" if not finished else " (added after the run)")
         for path in sorted(_files_under(run_dir))
-        if path not in recorded and path not in (LEDGER_FILE, LEDGER_SUM_FILE, SIGNATURE_FILE)
+        if path not in recorded and path not in BESIDE_THE_SEAL
     ]
 
     if expected_seal is not None and seal != expected_seal.strip().lower():
@@ -243,27 +305,38 @@ def verify_run(
 
     signature: SignatureStatus
     sig_path = run_dir / SIGNATURE_FILE
-    if public_key is None:
+    candidates = [given] if given is not None else [key for key, _ in keys.values()]
+    if not candidates:
         signature = "not-checked" if sig_path.exists() else "absent"
     elif not sig_path.exists():
         signature = "absent"
-        problems.append(f"{SIGNATURE_FILE}: missing, but a key was given to check it")
+        if given is not None:
+            problems.append(f"{SIGNATURE_FILE}: missing, but a key was given to check it")
     else:
-        key = load_public_key(public_key)
         raw = read_signature(sig_path)
         signature = "invalid"
         if raw is None:
             problems.append(f"{SIGNATURE_FILE}: not one line of base64 of a 64-byte signature")
         elif seal is None:
             problems.append(f"{SIGNATURE_FILE}: the ledger is empty; there is no seal to check")
+        elif any(signature_matches(key, raw, seal.encode("ascii")) for key in candidates):
+            signature = "valid"
         else:
-            from cryptography.exceptions import InvalidSignature
+            which = "key" if given is not None else "any key of the trust folder"
+            problems.append(f"{SIGNATURE_FILE}: the signature does not match the seal and {which}")
 
-            try:
-                key.verify(raw, seal.encode("ascii"))
-                signature = "valid"
-            except InvalidSignature:
-                problems.append(f"{SIGNATURE_FILE}: the signature does not match the seal and key")
+    approvals: list[Approval] = []
+    check = check_approvals(run_dir, seal, keys, trusted_only=trust is not None)
+    if check is not None:
+        approvals = check.approvals
+        problems.extend(check.problems)
+    if expected_approval is not None:
+        wanted = expected_approval.strip().lower()
+        if wanted not in {a.hash for a in approvals}:
+            problems.append(
+                f"{APPROVALS_FILE}: no record has the hash {wanted} given; it was removed "
+                "(with any after it) or altered"
+            )
 
     # A run that stopped early leaves files its ledger never reached: expected, so they
     # make it unfinished, not altered. After run-end, any such file was added later.
@@ -284,7 +357,9 @@ def verify_run(
         problems.extend(unrecorded)
     else:
         status = "intact"
-    return VerifyReport(run_dir, status, seal, problems, len(checked), signature, len(lines))
+    return VerifyReport(
+        run_dir, status, seal, problems, len(checked), signature, len(lines), approvals
+    )
 
 
 def _files_under(run_dir: Path) -> list[str]:

@@ -7,6 +7,7 @@ database of the throw-away PostgreSQL server (see conftest.py).
 from __future__ import annotations
 
 import dataclasses
+import getpass
 import json
 import os
 import shutil
@@ -69,7 +70,9 @@ def test_a_finished_run_is_recorded_with_everything(catalogue_url: str, tmp_path
     assert run.recipe_sha256 == load_recipe(recipe).sha256
     assert run.git_commit is None  # the recipe is not in a git work tree
     assert (run.lot, run.lot_path) == ("AB-0001", str(lot))
-    assert run.customer is run.order_ref is run.specification is run.operator is None
+    # no lot details were given: only the operator, by default the login name
+    assert run.customer is run.order_ref is run.specification is None
+    assert run.operator == getpass.getuser()
     assert run.started_utc is not None and run.ended_utc is not None
     assert run.started_utc <= run.ended_utc and run.started_utc.utcoffset().total_seconds() == 0
     assert run.lotproof_version == "0.1.0" and run.executor == "local, 1 process"

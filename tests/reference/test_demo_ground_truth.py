@@ -13,6 +13,7 @@ from pathlib import Path
 import pytest
 
 from lotproof import load_recipe, run_lot
+from lotproof.runner.recipe.lotsheet import lot_details
 
 ROOT = Path(__file__).resolve().parents[2]
 RECIPE = ROOT / "recipes" / "filter-disc-porosity.yaml"
@@ -28,7 +29,10 @@ POROSITY_TOLERANCE = 0.004
 
 @pytest.fixture(scope="module")
 def demo_run(tmp_path_factory: pytest.TempPathFactory):  # type: ignore[no-untyped-def]
-    return run_lot(load_recipe(RECIPE), LOT, tmp_path_factory.mktemp("runs"))
+    # the lot sheet beside the lot gives the details; the operator is pinned, so that the
+    # committed verdicts.json does not depend on who runs the tests
+    details = lot_details(LOT, options={"operator": "example operator"})
+    return run_lot(load_recipe(RECIPE), LOT, tmp_path_factory.mktemp("runs"), details=details)
 
 
 @pytest.fixture(scope="module")

@@ -216,6 +216,47 @@ def test_seal_signature_is_ed25519_over_the_hex_text(tmp_path: Path) -> None:
     assert verify_run(run, public).signature == "valid"
 
 
+def test_a_key_fingerprint_is_the_sha256_of_the_raw_public_key(tmp_path: Path) -> None:
+    from lotproof.runner.record.signing import fingerprint, load_public_key, load_trust
+
+    _, public = _rfc_keys(tmp_path)
+    # source: RFC 8032 section 7.1 TEST 1's public key; sha256 by hashlib, not by lotproof
+    expected = hashlib.sha256(bytes.fromhex(RFC8032_PUBLIC)).hexdigest()
+    assert fingerprint(load_public_key(public)) == expected
+    trust = tmp_path / "trust"
+    trust.mkdir()
+    shutil.copy(public, trust / "rfc.pub")
+    assert list(load_trust(trust)) == [expected]
+
+
+def test_an_approval_record_signs_the_rfc8785_bytes_of_its_six_fields(tmp_path: Path) -> None:
+    from lotproof.runner.record.approvals import append_approval, signed_fields
+
+    private, _ = _rfc_keys(tmp_path)
+    run = tmp_path / "run"
+    run.mkdir()
+    seal = "ab" * 32
+    record = append_approval(
+        run, lambda: seal, private, role="reviewed", name="Zoë Ünal", comment="ok",
+        time_utc="2026-12-02T09:14:03Z",
+    )  # fmt: skip
+    # source: RFC 8785 section 3.2.3 (keys sorted by UTF-16 code units; strings as they are,
+    # no escapes for non-ASCII), written out by hand
+    payload = (
+        '{"comment":"ok","name":"Zoë Ünal","prev":"' + seal + '","role":"reviewed",'
+        '"seal":"' + seal + '","time_utc":"2026-12-02T09:14:03Z"}'
+    ).encode("utf-8")
+    assert (
+        signed_fields(seal, "reviewed", "Zoë Ünal", "2026-12-02T09:14:03Z", "ok", seal) == payload
+    )
+    # source: RFC 8032 section 5.1 (Ed25519 is deterministic): the RFC key over those bytes
+    rfc_key = Ed25519PrivateKey.from_private_bytes(bytes.fromhex(RFC8032_SECRET))
+    assert record.signature == rfc_key.sign(payload)
+    line = json.loads((run / "approvals.jsonl").read_bytes())
+    assert base64.b64decode(line["signature"]) == rfc_key.sign(payload)
+    assert line["key"] == hashlib.sha256(bytes.fromhex(RFC8032_PUBLIC)).hexdigest()
+
+
 # ---------------------------------------------------------------- DSSE
 
 
