@@ -81,6 +81,14 @@ class StepKind:
     definitions: Mapping[str, str] = field(default_factory=dict)
     #: table columns the step gives: name -> (unit, definition)
     columns: Mapping[str, tuple[str, str]] = field(default_factory=dict)
+    #: ``degenerate(params, ndim)``: why these parameters (resolved to pixels) would make
+    #: the step change nothing, or give a constant, on ``ndim``-D data; None when they
+    #: do not. A step that silently does nothing is how a failing lot passes.
+    degenerate: Callable[[Any, int], str | None] | None = None
+
+    def degenerate_reason(self, params: Any, ndim: int) -> str | None:
+        """:attr:`degenerate` of ``params`` on ``ndim``-D data (None for kinds without one)."""
+        return None if self.degenerate is None else self.degenerate(params, ndim)
 
     @property
     def summary(self) -> str:
@@ -122,6 +130,7 @@ def step(
     libraries: Sequence[str] = ("numpy",),
     definitions: Mapping[str, str] | None = None,
     columns: Mapping[str, tuple[str, str]] | None = None,
+    degenerate: Callable[[Any, int], str | None] | None = None,
 ) -> Callable[[Callable[..., Any]], Callable[..., Any]]:
     """Register ``func`` as the step kind ``name`` (see the module docstring)."""
     accepted = tuple(frozenset([t]) if isinstance(t, str) else frozenset(t) for t in takes)
@@ -151,6 +160,7 @@ def step(
             libraries=tuple(libraries),
             definitions=dict(definitions or {}),
             columns=dict(columns or {}),
+            degenerate=degenerate,
         )
         return func
 

@@ -155,6 +155,19 @@ class SmoothParams(StepParams):
         return self
 
 
+def _smooth_degenerate(params: SmoothParams, ndim: int) -> str | None:
+    """A median over one pixel is the image itself."""
+    if params.method != "median" or params.radius is None:
+        return None
+    radius = max(params.radius.px_axes(ndim))
+    if radius >= 1:
+        return None
+    return (
+        f"the median's disk of radius {params.radius} is a single pixel, so this step changes "
+        "nothing; give a radius of at least 1 px"
+    )
+
+
 @step(
     "smooth",
     params=SmoothParams,
@@ -163,6 +176,7 @@ class SmoothParams(StepParams):
     version="1",
     ndims=(2, 3),
     libraries=("numpy", "scipy"),
+    degenerate=_smooth_degenerate,
 )
 def smooth(params: SmoothParams, image: np.ndarray, *, spacing: tuple[float, ...]) -> np.ndarray:
     """Smooth an image with a gaussian or a median filter.

@@ -16,7 +16,8 @@ refuses NaN and infinities); float ``-0.0`` is read as ``+0.0``.
 
 from __future__ import annotations
 
-from typing import Literal
+from collections.abc import Callable
+from typing import Any, Literal
 
 import numpy as np
 from pydantic import Field
@@ -100,6 +101,33 @@ def _difference(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return difference
 
 
+def _single_pixel(effect: str) -> Callable[[Any, int], str | None]:
+    """A ``degenerate`` rule: a footprint of one pixel (or none) makes the step ``effect``."""
+
+    def rule(params: Any, ndim: int) -> str | None:
+        try:
+            pixels = int(build_footprint(params, ndim).sum())
+        except ValueError:
+            return None  # a footprint that does not fit the data: reported where it is built
+        if pixels > 1:
+            return None
+        return (
+            f"the {params.footprint} footprint ({_size_text(params)}) is a single pixel, so "
+            f"this step {effect}; give a footprint larger than one pixel"
+        )
+
+    return rule
+
+
+def _size_text(params: Any) -> str:
+    sizes = [
+        f"{name} {getattr(params, name)}"
+        for name in ("radius", "size", "width", "height", "length")
+        if getattr(params, name, None) is not None
+    ]
+    return ", ".join(sizes) or "no size"
+
+
 def _open(data: np.ndarray, footprint: np.ndarray) -> np.ndarray:
     return _morph.dilate(_morph.erode(data, footprint), footprint)
 
@@ -116,6 +144,7 @@ def _close(data: np.ndarray, footprint: np.ndarray) -> np.ndarray:
     version="1",
     ndims=(2, 3),
     libraries=_LIBRARIES,
+    degenerate=_single_pixel("changes nothing"),
 )
 def erode(params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, ...]) -> np.ndarray:
     """Erosion: the minimum over the footprint (shrinks bright regions and masks).
@@ -160,6 +189,7 @@ def erode(params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, .
     version="1",
     ndims=(2, 3),
     libraries=_LIBRARIES,
+    degenerate=_single_pixel("changes nothing"),
 )
 def widen(params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, ...]) -> np.ndarray:
     """Dilation: the maximum over the footprint (grows bright regions and masks).
@@ -204,6 +234,7 @@ def widen(params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, .
     version="1",
     ndims=(2, 3),
     libraries=_LIBRARIES,
+    degenerate=_single_pixel("changes nothing"),
 )
 def open_(params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, ...]) -> np.ndarray:
     """Opening: erode, then widen by the same footprint (removes bright specks smaller than it).
@@ -247,6 +278,7 @@ def open_(params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, .
     version="1",
     ndims=(2, 3),
     libraries=_LIBRARIES,
+    degenerate=_single_pixel("changes nothing"),
 )
 def close(params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, ...]) -> np.ndarray:
     """Closing: widen, then erode by the same footprint (fills dark gaps smaller than it).
@@ -289,6 +321,7 @@ def close(params: MorphologyParams, data: np.ndarray, *, spacing: tuple[float, .
     version="1",
     ndims=(2, 3),
     libraries=_LIBRARIES,
+    degenerate=_single_pixel("gives zero (or nothing) everywhere"),
 )
 def outline(params: OutlineParams, data: np.ndarray, *, spacing: tuple[float, ...]) -> np.ndarray:
     """Morphological gradient: widen - erode, or one half of it (``mode``).
@@ -347,6 +380,9 @@ def outline(params: OutlineParams, data: np.ndarray, *, spacing: tuple[float, ..
     version="1",
     ndims=(2, 3),
     libraries=_LIBRARIES,
+    degenerate=_single_pixel(
+        "gives zero everywhere: the background it removes is the image itself"
+    ),
 )
 def subtract_background(
     params: BackgroundParams, image: np.ndarray, *, spacing: tuple[float, ...]

@@ -14,11 +14,12 @@ number). The foreground is ``image > level`` for ``features: bright`` and
 ``image <= level`` for ``features: dark``: the two are complements of each
 other.
 
-Degenerate inputs: a constant image gives an EMPTY mask for every automatic
-method (``otsu``, ``li``, ``yen``, ``triangle``, ``isodata``, ``local``) and for
-both ``features``, with ``level`` equal to the constant value: a threshold
-must not invent an object where the image shows no contrast. ``fixed`` applies
-its level as written. Images with NaN or infinite values, and integer images
+Degenerate inputs: a constant image is refused by every automatic method
+(``otsu``, ``li``, ``yen``, ``triangle``, ``isodata``, ``local``) with "no
+contrast" (``ValueError``, so the image is incomplete): there is no level to
+choose, and an empty mask would measure as "no pores" and pass a ``max``
+limit — the classic silent pass when an earlier step flattened the image.
+``fixed`` applies its level as written. Images with NaN or infinite values, and integer images
 with values beyond 2**53 (not all exact in float64), are refused.
 """
 
@@ -287,7 +288,7 @@ def _compare(image: np.ndarray, level: float | np.ndarray, features: str) -> np.
     params=ThresholdParams,
     takes=["image"],
     gives="mask",
-    version="1",
+    version="2",
     values={"level": "-"},
     ndims=(2, 3),
     libraries=("numpy", "numba"),
@@ -391,11 +392,11 @@ def threshold(params: ThresholdParams, image: np.ndarray, *, spacing: tuple[floa
         return Output(_compare(image, level, params.features), {"level": level}, {"level": "-"})
 
     if low == high:
-        # no contrast, no object (see the module documentation)
-        mask = np.zeros(image.shape, dtype=bool)
-        if method == "local":
-            return Output(mask, {}, {})
-        return Output(mask, {"level": float(low)}, {"level": "-"})
+        # no contrast: refused, never an empty mask that passes (see the module documentation)
+        raise ValueError(
+            f"no contrast: every pixel of the image is {low:.6g}, so the {method} threshold has "
+            "no level to choose; an earlier step may have flattened it (or the image is blank)"
+        )
 
     if method == "local":
         assert params.block_size is not None

@@ -39,9 +39,11 @@ import re
 from dataclasses import dataclass
 from typing import Any, ClassVar, TypeVar
 
-from pydantic import GetCoreSchemaHandler, GetJsonSchemaHandler
+from pydantic import BaseModel, GetCoreSchemaHandler, GetJsonSchemaHandler
 from pydantic.json_schema import JsonSchemaValue
 from pydantic_core import PydanticCustomError, core_schema
+
+_Model = TypeVar("_Model", bound=BaseModel)
 
 __all__ = [
     "AREA_UNITS",
@@ -55,6 +57,7 @@ __all__ = [
     "parse_length",
     "parse_volume",
     "resolve_for_spacing",
+    "resolve_params",
     "resolve_to_px",
     "typeset_unit",
     "unit_factor",
@@ -521,3 +524,23 @@ def resolve_for_spacing(
     if len(set(axes)) == 1:
         return Length(axes[-1], "px")
     return Length(axes[-1], "px", axes)
+
+
+def resolve_params(params: _Model, spacing: tuple[float, ...]) -> _Model:
+    """``params`` with every length, area and volume converted to pixels.
+
+    ``spacing`` is the pixel size per array axis in um, ``(dy, dx)`` or
+    ``(dz, dy, dx)``. With square pixels (cubic voxels) a length becomes plain
+    pixels. Otherwise a physical length becomes a length in px that carries
+    its size along every axis (``Length.axes``, see above):
+    footprints turn it into an ellipse or ellipsoid, and a step that applies
+    one size along every axis refuses it. Areas use ``dy * dx``, volumes
+    ``dz * dy * dx``. The cache key holds both the resolved parameters (whose
+    text shows the per-axis sizes) and the spacing.
+    """
+    update: dict[str, Any] = {}
+    for name in type(params).model_fields:
+        value = getattr(params, name)
+        if isinstance(value, (Length, Area, Volume)):
+            update[name] = resolve_for_spacing(value, tuple(spacing))
+    return params.model_copy(update=update) if update else params

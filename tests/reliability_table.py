@@ -197,6 +197,18 @@ HARDENING_ROWS = [
         ("test_images_whose_safe_names_clash_get_unique_recorded_names",),
     ),
     (
+        "hostile: steps that would do nothing",
+        "a footprint of one pixel (`radius: 0.1 um` at 0.65 um per pixel) is a recipe error at "
+        "`check` and `run` (exit 2) when the pixel size is known, and makes every image "
+        "`incomplete` when it comes from the image; an automatic threshold on a flattened "
+        "(constant) intermediate says `no contrast`, never an empty mask that passes",
+        (
+            "test_a_sub_pixel_footprint_is_a_recipe_error_when_the_pixel_size_is_known",
+            "test_a_sub_pixel_footprint_makes_each_image_incomplete_when_sizes_come_from_the_image",
+            "test_a_flattened_intermediate_is_no_contrast_never_an_empty_pass",
+        ),
+    ),
+    (
         "hostile: the cache",
         "an entry whose header names a false checksum never reaches `steps.csv` or the ledger; an "
         "entry larger than a result of the image can be is refused before it is read; a pipe in "

